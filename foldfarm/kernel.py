@@ -14,8 +14,7 @@ constrained dimension is a child of the current node.  A node at depth ``k``
 is a placement of leaves ``1..k``; the foldings are the placements of all
 ``n`` leaves.
 
-Search state (all int16 except where said; one row per leaf, index 0 is the
-sentinel):
+Search state (int64 arrays, one entry per leaf, index 0 the sentinel):
 
 ``above[x]``, ``below[x]``
     the cycle: the leaf directly above / below ``x``.  Invariant: the leaves
@@ -24,11 +23,12 @@ sentinel):
     a stack of gap lists, one list per level: the untried children of the
     node at depth ``l - 1`` are ``gap[gapter[l-1]:gapter[l]]`` once leaf
     ``l`` is placed (it took ``gap[gapter[l]]``, later overwritten).
-``gapter[l]`` (int32)
+``gapter[l]``
     where level ``l + 1`` starts writing its gap list.
-``tally[m]``
-    scratch: how many constrained dimensions allowed gap ``m`` so far; zero
-    between nodes.
+``mark[m]``
+    scratch for intersecting the gap lists of several dimensions: equal to
+    ``stamp + k`` while gap ``m`` has passed the first ``k`` walks of the
+    current node (see :func:`_gaps`); older values are below ``stamp``.
 
 Three savings over the plain procedure
 ======================================
@@ -128,24 +128,27 @@ class Tables:
     sides: tuple[int, ...]
     n: int
     table: np.ndarray = field(repr=False)
-    #: multiplier from reduced-tree leaves to foldings: n, times 2 for the mirror.
-    factor: int = 1
+    #: search only the half with leaf 2 above leaf 3 (needs n >= 3)
+    mirror: bool = False
 
     @property
-    def mirror(self) -> bool:
-        return self.n >= 3
+    def factor(self) -> int:
+        """Foldings per leaf of the reduced tree: n rotations, times 2 mirrored."""
+        return self.n * (2 if self.mirror else 1)
 
 
 @lru_cache(maxsize=32)
-def tables_for(sides: tuple[int, ...]) -> Tables:
-    """Build (and memoise) the kernel tables for working sides ``sides``."""
+def tables_for(sides: tuple[int, ...], mirror: bool = True) -> Tables:
+    """Build (and memoise) the kernel tables for working sides ``sides``.
+
+    ``mirror=False`` searches both halves (tests use it to check the saving).
+    """
     n = math.prod(sides)
     table = neighbour_table(sides)
     # Leaf 1 stays on top: the walk steps over the sentinel (see module doc).
     table[:, :, 0] = table[:, :, 1]
     table.setflags(write=False)
-    factor = n * (2 if n >= 3 else 1)
-    return Tables(sides=sides, n=n, table=table, factor=factor)
+    return Tables(sides=sides, n=n, table=table, mirror=mirror and n >= 3)
 
 
 def prepare(shape: Shape | str, order: str = "fast") -> Tables:
@@ -387,11 +390,11 @@ class _State:
     """Scratch arrays for one search; reused by later calls on one map."""
 
     def __init__(self, n: int):
-        self.above = np.zeros(n + 1, np.int16)
-        self.below = np.zeros(n + 1, np.int16)
+        self.above = np.zeros(n + 1, np.int64)
+        self.below = np.zeros(n + 1, np.int64)
         self.mark = np.zeros(n + 1, np.int64)
-        self.gapter = np.zeros(n + 1, np.int32)
-        self.gap = np.zeros(n * (n + 1) // 2 + n + 1, np.int16)
+        self.gapter = np.zeros(n + 1, np.int64)
+        self.gap = np.zeros(n * (n + 1) // 2 + n + 1, np.int64)
 
 
 def _path(above: np.ndarray, last: int) -> tuple[int, ...]:

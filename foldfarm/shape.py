@@ -29,9 +29,9 @@ import numpy as np
 
 from foldfarm.errors import UserError
 
-#: The most cells the kernel addresses.  Leaf numbers live in int16 arrays,
-#: and the neighbour table holds ``dims * (cells + 1)**2`` of them, so the
-#: bound keeps the table under ~25 MB even for a 10-dimensional hypercube.
+#: The most cells the kernel addresses.  The neighbour table holds
+#: ``dims * (cells + 1)**2`` 8-byte entries and the gap stack ``cells**2 / 2``,
+#: so the bound keeps them under 100 MB even for a 10-dimensional hypercube.
 #: Every map whose count is open today has fewer than 100 cells.
 MAX_CELLS = 1024
 
@@ -130,12 +130,13 @@ def neighbour_table(sides: tuple[int, ...]) -> np.ndarray:
     ``l`` has no lower neighbour in dimension ``i`` (no constraint there).
     Entries with ``m > l`` and the sentinel column ``m = 0`` are 0.
 
-    Shape ``(n + 1, dims, n + 1)``, dtype int16: the rows read while placing
-    one leaf sit together, and 2-byte entries keep an 8x8 table in L1.
+    Shape ``(n + 1, dims, n + 1)``, so the rows read while placing one leaf
+    sit together.  dtype int64: narrower entries were measured slower, even
+    for 8x8 (see DEVELOPERS.md).
     """
     n = math.prod(sides)
     coord = coordinates(sides)
-    table = np.zeros((n + 1, len(sides), n + 1), dtype=np.int16)
+    table = np.zeros((n + 1, len(sides), n + 1), dtype=np.int64)
     l = np.arange(n + 1)[:, None]
     m = np.arange(n + 1)[None, :]
     placed = (m >= 1) & (m <= l)

@@ -1,0 +1,3 @@
+from foldfarm.cli import main
+
+main()

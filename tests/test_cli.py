@@ -1,0 +1,47 @@
+"""The command line, run as a user runs it: a subprocess, exit codes, stdout, stderr."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+
+import pytest
+
+
+def foldfarm(*args: str, env=None, timeout=120) -> subprocess.CompletedProcess:
+    return subprocess.run([sys.executable, "-m", "foldfarm", *args], capture_output=True, text=True,
+                          timeout=timeout, env=env)
+
+
+def test_count_prints_the_exact_count():
+    out = foldfarm("count", "3x5")
+    assert out.returncode == 0, out.stderr
+    assert out.stdout.strip() == "201240"  # OEIS A001416, 3x5
+
+
+def test_count_json():
+    out = foldfarm("count", "2x2x2", "--json")
+    assert out.returncode == 0, out.stderr
+    obj = json.loads(out.stdout)
+    assert obj["shape"] == "2x2x2" and obj["cells"] == 8
+    from oracle import count_by_permutations
+    assert obj["count"] == count_by_permutations((2, 2, 2))  # brute-force oracle
+    assert isinstance(obj["count"], int) and obj["seconds"] >= 0 and obj["nodes"] > 0
+
+
+def test_given_order_gives_the_same_count():
+    a = foldfarm("count", "8x3", "--json", "--given-order")
+    obj = json.loads(a.stdout)
+    assert obj["side_order"] == "8x3"
+    assert obj["count"] == 201060768  # OEIS A001416, 3x8
+
+
+@pytest.mark.parametrize("shape", ["0x5", "3x", "x", "-2x3", "3,5", "2.5x3", "", "2000x2000"])
+def test_malformed_shape_exits_2_with_one_line(shape):
+    out = foldfarm("count", shape)
+    assert out.returncode == 2
+    assert out.stdout == ""
+    lines = out.stderr.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("foldfarm: "), out.stderr
+    assert "Traceback" not in out.stderr
