@@ -34,8 +34,7 @@ class ResultConflict(StoreError):
         self.stored = stored
         self.offered = offered
         super().__init__(
-            f"task {task_id} ({prefix}) is already {stored}; the new result ({offered}) "
-            "disagrees and was not recorded"
+            f"task {task_id} ({prefix}) is already {stored}; the new result ({offered}) disagrees and was not recorded"
         )
 
 

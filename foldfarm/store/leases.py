@@ -32,7 +32,9 @@ class LeaseInfo:
 def check_holder(holder: object) -> str:
     """Return ``holder`` if it is a usable holder name (e.g. ``host:pid``)."""
     if not isinstance(holder, str) or not holder.strip() or len(holder) > MAX_HOLDER_LENGTH:
-        raise StoreError(f"lease holder must be a non-empty name of at most {MAX_HOLDER_LENGTH} characters, got {holder!r}")
+        raise StoreError(
+            f"lease holder must be a non-empty name of at most {MAX_HOLDER_LENGTH} characters, got {holder!r}"
+        )
     return holder
 
 

@@ -6,7 +6,10 @@ both in step and bump :data:`SCHEMA_VERSION` when they change.
 
 Times are naive UTC.  Ids are allocated by the store from ``id_counters``
 (one row per table) inside the inserting transaction: that works the same on
-SQLite and PostgreSQL, which share no auto-increment syntax.
+SQLite and PostgreSQL, which share no auto-increment syntax.  The price: on
+PostgreSQL two transactions inserting into the same table (say, one run's
+planning and another run's split) take turns on the counter row until the
+first commits; SQLite serialises all writers anyway.
 """
 
 from __future__ import annotations
@@ -32,11 +35,21 @@ from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
 from sqlalchemy.types import TypeDecorator
 
 from foldfarm.store.errors import StoreError
+from foldfarm.store.rules import TOTAL_DIGITS, check_total
 
 #: Version of the schema below; stored in ``meta`` as ``schema_version``.
 SCHEMA_VERSION = 1
-#: Most decimal digits of an exact total (10**64 is far beyond any enumeration).
-TOTAL_DIGITS = 64
+
+
+def check_json(value: object, what: str) -> dict:
+    """Return ``value`` if it is a dict that JSON can store, else raise :class:`StoreError`."""
+    if not isinstance(value, dict):
+        raise StoreError(f"{what} must be a dict, got {type(value).__name__}")
+    try:
+        json.dumps(value)
+    except (TypeError, ValueError) as exc:
+        raise StoreError(f"{what} cannot be stored as JSON: {exc}") from None
+    return value
 
 
 class ExactInt(TypeDecorator):
@@ -51,14 +64,7 @@ class ExactInt(TypeDecorator):
     cache_ok = True
 
     def process_bind_param(self, value: Any, dialect: Any) -> str | None:
-        if value is None:
-            return None
-        if isinstance(value, bool) or not isinstance(value, int) or value < 0:
-            raise StoreError(f"an exact total must be a whole number >= 0, got {value!r}")
-        text = str(value)
-        if len(text) > TOTAL_DIGITS:
-            raise StoreError(f"a total of {len(text)} digits is more than the {TOTAL_DIGITS} the store keeps")
-        return text
+        return None if value is None else str(check_total(value))
 
     def process_result_value(self, value: Any, dialect: Any) -> int | None:
         return None if value is None else int(value)
@@ -71,12 +77,7 @@ class JsonText(TypeDecorator):
     cache_ok = True
 
     def process_bind_param(self, value: Any, dialect: Any) -> str | None:
-        if value is None:
-            return None
-        try:
-            return json.dumps(value, sort_keys=True)
-        except (TypeError, ValueError) as exc:
-            raise StoreError(f"cannot store {type(value).__name__} as JSON: {exc}") from None
+        return None if value is None else json.dumps(value, sort_keys=True)
 
     def process_result_value(self, value: Any, dialect: Any) -> Any:
         return None if value is None else json.loads(value)

@@ -1,9 +1,11 @@
 """Prefix texts: the names of tasks within a run.
 
 A prefix is ``/`` (the root: the whole search tree) or ``/a/b/c`` with
-positive integer components and no leading zeros, so each subtree has one
-spelling.  Its *depth* is the number of components and its *branch* the
-first component (``None`` for the root).
+positive integer components (at most 5 digits, no leading zeros), so each
+subtree has one spelling; :mod:`foldfarm.prefix` says what the steps mean.
+Its *depth* is the number of components and its *branch* the first
+component (``None`` for the root).  The store checks syntax and nesting
+only: whether a prefix is a node of the map's tree is the planner's business.
 
 >>> prefix_depth("/1/2/2/4"), prefix_branch("/1/2/2/4"), prefix_branch("/")
 (4, 1, None)
@@ -19,11 +21,12 @@ import re
 
 from foldfarm.store.errors import StoreError
 
-_PREFIX = re.compile(r"/|(?:/[1-9][0-9]*)+")
+# Same syntax as foldfarm.prefix (kept here so the store does not import the kernel).
+_PREFIX = re.compile(r"/|(?:/[1-9][0-9]{0,4})+")
 
-#: Longest accepted prefix text, in characters (the column is unbounded TEXT;
-#: the bound keeps a garbage argument from becoming a multi-megabyte key).
-MAX_PREFIX_LENGTH = 4000
+#: Longest accepted prefix text, in characters, as in foldfarm.prefix (the
+#: column is unbounded TEXT; the bound keeps garbage from becoming a huge key).
+MAX_PREFIX_LENGTH = 6000
 
 
 def check_prefix(text: object) -> str:
@@ -77,7 +80,7 @@ def check_remainder(parent: str, children: list[str]) -> list[str]:
     # In lexicographic order of components a subtree's members directly
     # follow its root, so checking neighbours finds every overlap.
     ordered = sorted(children, key=_components)
-    for a, b in zip(ordered, ordered[1:]):
+    for a, b in zip(ordered, ordered[1:], strict=False):
         if a == b:
             raise StoreError(f"remainder prefix {a} appears twice in the split of {parent}")
         if is_ancestor(a, b):

@@ -99,9 +99,8 @@ def list_runs(conn: Connection) -> list[RunSummary]:
     out = []
     for run_id, shape, state, total in conn.execute(select(Run.id, Run.shape, Run.state, Run.total).order_by(Run.id)):
         n = per_run.get(run_id, {})
-        out.append(
-            RunSummary(run_id, shape, state, *(n.get(s, 0) for s in TASK_STATES), counted.get(run_id, 0), total)
-        )
+        per_state = {s: n.get(s, 0) for s in TASK_STATES}
+        out.append(RunSummary(run_id, shape, state, counted=counted.get(run_id, 0), total=total, **per_state))
     return out
 
 

@@ -9,7 +9,7 @@ from __future__ import annotations
 import enum
 import math
 import operator
-from datetime import datetime, timedelta, timezone
+from datetime import UTC, datetime, timedelta
 
 from foldfarm.store.errors import StoreError
 
@@ -33,6 +33,8 @@ RUN_TRANSITIONS = {
 }
 
 INT64_MAX = 2**63 - 1
+#: Most decimal digits of an exact run total (10**64 is far beyond any enumeration).
+TOTAL_DIGITS = 64
 
 
 class Recorded(enum.Enum):
@@ -112,6 +114,19 @@ def check_int64(value: object, what: str) -> int:
     return number
 
 
+def check_total(value: object) -> int:
+    """Return ``value`` as an exact run total (int >= 0, at most 64 digits) or raise :class:`StoreError`."""
+    try:
+        if isinstance(value, bool):
+            raise TypeError
+        number = operator.index(value)
+    except TypeError:
+        raise StoreError(f"a run total must be a whole number, got {value!r}") from None
+    if number < 0 or len(str(number)) > TOTAL_DIGITS:
+        raise StoreError(f"a run total must lie in 0 .. 10**{TOTAL_DIGITS} - 1, got {number}")
+    return number
+
+
 def check_seconds(value: object, what: str) -> float:
     """Return ``value`` as a finite non-negative float (seconds) or raise :class:`StoreError`."""
     try:
@@ -126,9 +141,9 @@ def check_seconds(value: object, what: str) -> float:
 def utc(now: datetime | None = None) -> datetime:
     """``now`` (default: the current time) as a naive UTC datetime, the form stored."""
     if now is None:
-        now = datetime.now(timezone.utc)
+        now = datetime.now(UTC)
     if now.tzinfo is not None:
-        now = now.astimezone(timezone.utc).replace(tzinfo=None)
+        now = now.astimezone(UTC).replace(tzinfo=None)
     return now
 
 

@@ -16,7 +16,7 @@ import os
 import re
 
 from sqlalchemy import Engine, create_engine, event
-from sqlalchemy.engine import URL, make_url
+from sqlalchemy.engine import make_url
 from sqlalchemy.exc import ArgumentError
 
 from foldfarm.store.errors import StoreError
@@ -66,9 +66,7 @@ def _canonical(text: object) -> str:
         )
     if name in _PG_NAMES:
         return url.set(drivername=_PG_DRIVER).render_as_string(hide_password=False)
-    raise StoreError(
-        f"store URL scheme {name!r} is not supported: give one like {_EXAMPLES}"
-    )
+    raise StoreError(f"store URL scheme {name!r} is not supported: give one like {_EXAMPLES}")
 
 
 _USERINFO = re.compile(r"(://[^:/@\s]*):[^@\s]*@")
@@ -144,7 +142,3 @@ def _sqlite_on_begin(connection) -> None:
     else:
         connection.exec_driver_sql("BEGIN")
 
-
-def is_sqlite(url: str | URL) -> bool:
-    """True for a SQLite URL."""
-    return make_url(url).drivername.startswith("sqlite")
