@@ -79,6 +79,7 @@ the count of the task.
 from __future__ import annotations
 
 import math
+import threading
 import time
 from dataclasses import dataclass, field
 from functools import lru_cache
@@ -279,6 +280,7 @@ def _replay(table, n, above, below, mark, gap, gapter, steps, mirror):
     """
     dims = table.shape[1]
     stamp = np.int64(0)
+    mark[:] = 0  # the stamp restarts, so no old mark may survive
     above[0] = 1
     below[0] = 1
     above[1] = 0
@@ -304,6 +306,133 @@ def _replay(table, n, above, below, mark, gap, gapter, steps, mirror):
         above[below[l]] = l
         gapter[l] = 0
     return 0, stamp
+
+
+@numba.njit(cache=True, nogil=True)
+def _probe(table, n, above, below, mark, gap, level, mirror, stamp, probes, seed):
+    """Knuth's random probes (1975) below the placed leaves ``1..level-1``.
+
+    Each probe walks from the current node to a dead end or a last-leaf
+    node, choosing a child uniformly at random; with ``d_k`` the number of
+    children met at the ``k``-th step, ``1 + d_1 + d_1 d_2 + ...`` is an
+    unbiased estimate of the nodes expanded by a full search of the subtree
+    and ``d_1 d_2 ... d_last`` (0 at a dead end) of its reduced-tree leaves.
+    Returns ``(sum_nodes, sum_nodes_sq, sum_leaves, sum_leaves_sq, stamp)``
+    over ``probes`` probes; the placed leaves are left as they were.
+    """
+    dims = table.shape[1]
+    np.random.seed(seed)
+    s_nodes = 0.0
+    s_nodes2 = 0.0
+    s_leaves = 0.0
+    s_leaves2 = 0.0
+    for _ in range(probes):
+        l = level
+        weight = 1.0
+        nodes = 1.0
+        leaves = 0.0
+        while True:
+            g = _gaps(table, l, below, mark, stamp, gap, 0, True)
+            stamp += dims
+            if mirror and l == 3:
+                keep = 0
+                for j in range(g):
+                    if gap[j] == 2:
+                        gap[keep] = 2
+                        keep += 1
+                g = keep
+            if l == n:
+                leaves = weight * g
+                break
+            if g == 0:
+                break
+            weight *= g
+            nodes += weight
+            m = gap[np.random.randint(0, g)]
+            above[l] = m
+            below[l] = below[m]
+            below[m] = l
+            above[below[l]] = l
+            l += 1
+        for k in range(l - 1, level - 1, -1):
+            below[above[k]] = below[k]
+            above[below[k]] = above[k]
+        s_nodes += nodes
+        s_nodes2 += nodes * nodes
+        s_leaves += leaves
+        s_leaves2 += leaves * leaves
+    return s_nodes, s_nodes2, s_leaves, s_leaves2, stamp
+
+
+@numba.njit(cache=True, nogil=True)
+def _expand(table, n, above, below, mark, gap, gapter, steps, mirror, probes, seed):
+    """Children of the node ``steps`` and a probe estimate of each one's nodes.
+
+    Returns ``(children, estimates)``: the gaps of the next leaf, and for each
+    the mean of ``probes`` node estimates of its subtree (0 probes: all 1.0).
+    The node must be legal and must not be a last-leaf node.
+    """
+    dims = table.shape[1]
+    bad, stamp = _replay(table, n, above, below, mark, gap, gapter, steps, mirror)
+    l = steps.shape[0] + 2
+    g = _gaps(table, l, below, mark, stamp, gap, 0, True)
+    stamp += dims
+    kids = np.empty(g, np.int64)
+    k = 0
+    for j in range(g):
+        if not (mirror and l == 3) or gap[j] == 2:
+            kids[k] = gap[j]
+            k += 1
+    kids = kids[:k]
+    sizes = np.ones(k, np.float64)
+    if probes > 0 and k > 1:  # an only child needs no estimate: it is the whole subtree
+        for j in range(k):
+            m = kids[j]
+            above[l] = m
+            below[l] = below[m]
+            below[m] = l
+            above[below[l]] = l
+            s_nodes, _, _, _, stamp = _probe(table, n, above, below, mark, gap, l + 1, mirror,
+                                             stamp, probes, seed + j)
+            sizes[j] = s_nodes / probes
+            below[above[l]] = below[l]
+            above[below[l]] = above[l]
+    return kids, sizes
+
+
+@numba.njit(cache=True, nogil=True)
+def _node_seed(steps, seed):
+    """Probe seed of a node: FNV-1a over its steps, mixed with ``seed`` (31 bits)."""
+    h = np.uint64(14695981039346656037)
+    for m in steps:
+        h = (h ^ np.uint64(m)) * np.uint64(1099511628211)
+    h ^= np.uint64(seed) * np.uint64(0x9E3779B97F4A7C15)
+    return np.int64(h >> np.uint64(33))
+
+
+@numba.njit(cache=True, nogil=True)
+def _expand_many(table, n, above, below, mark, gap, gapter, flat, offsets, mirror, probes, seed):
+    """:func:`_expand` for many nodes: node ``j`` has steps ``flat[offsets[j]:offsets[j+1]]``.
+
+    Each node's probes are seeded by :func:`_node_seed`, so a node's estimate
+    does not depend on the batch it came in.  Returns ``(counts, kids,
+    sizes)``: node ``j``'s children are the next ``counts[j]`` entries of
+    ``kids``/``sizes``.
+    """
+    nodes = offsets.shape[0] - 1
+    counts = np.zeros(nodes, np.int64)
+    kids = np.empty(nodes * n, np.int64)
+    sizes = np.empty(nodes * n, np.float64)
+    at = 0
+    for j in range(nodes):
+        steps = flat[offsets[j]:offsets[j + 1]]
+        k, s = _expand(table, n, above, below, mark, gap, gapter, steps, mirror, probes,
+                       _node_seed(steps, seed))
+        counts[j] = k.shape[0]
+        kids[at:at + k.shape[0]] = k
+        sizes[at:at + k.shape[0]] = s
+        at += k.shape[0]
+    return counts, kids[:at], sizes[:at]
 
 
 @numba.njit(cache=True, nogil=True)
@@ -387,7 +516,11 @@ class Outcome:
 
 
 class _State:
-    """Scratch arrays for one search; reused by later calls on one map."""
+    """Scratch arrays for one search (one map of ``n`` cells).
+
+    :func:`_replay` re-initialises every entry a search reads, so one state
+    per thread and map size is reused (see :func:`_scratch`).
+    """
 
     def __init__(self, n: int):
         self.above = np.zeros(n + 1, np.int64)
@@ -395,6 +528,18 @@ class _State:
         self.mark = np.zeros(n + 1, np.int64)
         self.gapter = np.zeros(n + 1, np.int64)
         self.gap = np.zeros(n * (n + 1) // 2 + n + 1, np.int64)
+
+
+_local = threading.local()
+
+
+def _scratch(n: int) -> _State:
+    """This thread's scratch state for maps of ``n`` cells (allocation costs ~3 us a task)."""
+    cache = _local.__dict__.setdefault("states", {})
+    state = cache.get(n)
+    if state is None:
+        state = cache[n] = _State(n)
+    return state
 
 
 def _path(above: np.ndarray, last: int) -> tuple[int, ...]:
@@ -412,31 +557,38 @@ def _path(above: np.ndarray, last: int) -> tuple[int, ...]:
     return tuple(steps)
 
 
-def check_prefix(tables: Tables, steps: tuple[int, ...]) -> None:
-    """Raise :class:`PrefixError` unless ``steps`` is a node of the tree."""
+def _placed(tables: Tables, steps: tuple[int, ...]) -> tuple[_State, int]:
+    """Scratch state with the prefix ``steps`` placed, and the next stamp.
+
+    Raises :class:`PrefixError` naming the first step that is not legal.
+    """
     n = tables.n
     if n < 2 and steps:
         raise PrefixError("a map of one cell has no steps to take")
     if len(steps) > n - 2 and steps:
         raise PrefixError(
-            f"prefix places {len(steps) + 1} leaves, but a task places at most {max(n - 1, 1)} "
-            f"(the last leaf of {n} is counted in bulk)"
+            f"step {n - 1} places leaf {n}, but a prefix places at most leaves 1..{n - 1} "
+            f"(the last leaf is counted in bulk)"
         )
     for k, m in enumerate(steps, start=1):
         if not 1 <= m <= k:
             raise PrefixError(
                 f"step {k} puts leaf {k + 1} below leaf {m}, but only leaves 1..{k} are placed"
             )
-    if not steps:
-        return
-    state = _State(n)
-    bad, _ = _replay(tables.table, n, state.above, state.below, state.mark, state.gap,
-                     state.gapter, np.asarray(steps, np.int64), tables.mirror)
+    state = _scratch(n)
+    bad, stamp = _replay(tables.table, n, state.above, state.below, state.mark, state.gap,
+                         state.gapter, np.asarray(steps, np.int64), tables.mirror)
     if bad:
         leaf = bad + 1
         why = ("the mirror half (leaf 3 above leaf 2) is counted by symmetry"
                if tables.mirror and leaf == 3 else "a crease would cross another")
         raise PrefixError(f"step {bad} puts leaf {leaf} below leaf {steps[bad - 1]}, which is illegal: {why}")
+    return state, stamp
+
+
+def check_prefix(tables: Tables, steps: tuple[int, ...]) -> None:
+    """Raise :class:`PrefixError` unless ``steps`` is a node of the tree."""
+    _placed(tables, steps)
 
 
 def count_below(tables: Tables, steps: tuple[int, ...] = (), budget: int | None = None,
@@ -453,10 +605,7 @@ def count_below(tables: Tables, steps: tuple[int, ...] = (), budget: int | None 
     if n == 1:
         check_prefix(tables, steps)
         return Outcome(count=1, nodes=0, complete=True, remainder=[], seconds=0.0)
-    check_prefix(tables, steps)
-    state = _State(n)
-    _, stamp = _replay(tables.table, n, state.above, state.below, state.mark, state.gap,
-                       state.gapter, np.asarray(steps, np.int64), tables.mirror)
+    state, stamp = _placed(tables, steps)
     floor = len(steps) + 2
     level = floor
     left = UNLIMITED if budget is None else int(budget)
@@ -482,6 +631,60 @@ def count_below(tables: Tables, steps: tuple[int, ...] = (), budget: int | None 
         for k in range(gapter[j - 1], gapter[j]):
             remainder.append(base + (int(gap[k]),))
     return Outcome(leaves * tables.factor, nodes, False, remainder, time.perf_counter() - started)
+
+
+def expand(tables: Tables, steps: tuple[int, ...], probes: int = 0,
+           seed: int = 0) -> tuple[list[int], list[float]]:
+    """Children of node ``steps`` (the next leaf's allowed gaps) and their estimated sizes.
+
+    Sizes are estimated node counts of each child's subtree from ``probes``
+    random probes each (all 1.0 when ``probes`` is 0).  ``steps`` must be a
+    legal node that places fewer than ``n - 1`` leaves.
+    """
+    if len(steps) + 2 >= tables.n:
+        raise PrefixError(f"a node placing {len(steps) + 1} leaves of {tables.n} has no children to split into")
+    state = _scratch(tables.n)
+    kids, sizes = _expand(tables.table, tables.n, state.above, state.below, state.mark, state.gap,
+                          state.gapter, np.asarray(steps, np.int64), tables.mirror, probes, seed)
+    return kids.tolist(), sizes.tolist()
+
+
+def expand_many(tables: Tables, nodes: list[tuple[int, ...]], probes: int,
+                seed: int = 0) -> list[tuple[list[int], list[float]]]:
+    """:func:`expand` for a batch of legal, splittable nodes, in one compiled call.
+
+    Probes are seeded per node from its steps and ``seed``.
+    """
+    if not nodes:
+        return []
+    lengths = np.fromiter((len(s) for s in nodes), np.int64, len(nodes))
+    offsets = np.zeros(len(nodes) + 1, np.int64)
+    np.cumsum(lengths, out=offsets[1:])
+    flat = np.fromiter((m for s in nodes for m in s), np.int64, int(offsets[-1]))
+    state = _scratch(tables.n)
+    counts, kids, sizes = _expand_many(tables.table, tables.n, state.above, state.below, state.mark,
+                                       state.gap, state.gapter, flat, offsets, tables.mirror, probes,
+                                       seed)
+    out = []
+    at = 0
+    kids_l, sizes_l = kids.tolist(), sizes.tolist()
+    for c in counts.tolist():
+        out.append((kids_l[at:at + c], sizes_l[at:at + c]))
+        at += c
+    return out
+
+
+def probe(tables: Tables, steps: tuple[int, ...], probes: int, seed: int = 0) -> tuple[float, float, float, float]:
+    """Sums over ``probes`` Knuth probes below ``steps``: nodes, nodes², leaves, leaves².
+
+    Leaves are reduced-tree leaves; multiply by :attr:`Tables.factor` for foldings.
+    """
+    if tables.n == 1:
+        return float(probes), float(probes), float(probes), float(probes)
+    state, stamp = _placed(tables, steps)
+    a, b, c, d, _ = _probe(tables.table, tables.n, state.above, state.below, state.mark, state.gap,
+                           len(steps) + 2, tables.mirror, stamp, probes, seed)
+    return a, b, c, d
 
 
 def count(shape: Shape | str, order: str = "fast") -> int:
