@@ -87,7 +87,7 @@ from functools import lru_cache
 import numba
 import numpy as np
 
-from foldfarm.errors import UserError
+from foldfarm.prefix import PrefixError, parse_prefix
 from foldfarm.shape import Shape, neighbour_table, parse_shape
 
 #: Node expansions between two looks at the clock in a timed count.
@@ -95,10 +95,6 @@ CLOCK_CHUNK = 1 << 20
 
 #: ``budget`` meaning "no limit".
 UNLIMITED = np.iinfo(np.int64).max
-
-
-class PrefixError(UserError, ValueError):
-    """A prefix is not a legal path of the search tree; the message names the step."""
 
 
 def fast_order(sides: tuple[int, ...]) -> tuple[int, ...]:
@@ -589,6 +585,13 @@ def _placed(tables: Tables, steps: tuple[int, ...]) -> tuple[_State, int]:
 def check_prefix(tables: Tables, steps: tuple[int, ...]) -> None:
     """Raise :class:`PrefixError` unless ``steps`` is a node of the tree."""
     _placed(tables, steps)
+
+
+def legal_prefix(tables: Tables, text: str) -> tuple[int, ...]:
+    """Steps of prefix ``text`` if it is a node of the tree, else :class:`PrefixError` naming the first bad step."""
+    steps = parse_prefix(text)
+    check_prefix(tables, steps)
+    return steps
 
 
 def count_below(tables: Tables, steps: tuple[int, ...] = (), budget: int | None = None,

@@ -1,5 +1,8 @@
 """Prefixes: the names of subtrees of a map's search tree, and so of tasks.
 
+Pure text and tuple functions (no kernel import, so the store can use them);
+:func:`foldfarm.kernel.legal_prefix` checks a prefix against a map's tree.
+
 A node of the search tree (see :mod:`foldfarm.kernel`) is a placement of
 leaves ``1..k``; it is reached by *steps*, the leaf that each of leaves
 ``2..k`` was inserted directly below.  Its text form is a path: ``/`` for the
@@ -19,7 +22,7 @@ from __future__ import annotations
 
 import re
 
-from foldfarm.kernel import PrefixError, Tables, check_prefix
+from foldfarm.errors import UserError
 
 ROOT = "/"
 _TEXT = re.compile(r"/|(?:/[1-9][0-9]{0,4})+")
@@ -27,6 +30,10 @@ _TEXT = re.compile(r"/|(?:/[1-9][0-9]{0,4})+")
 MAX_TEXT = 6000
 
 Steps = tuple[int, ...]
+
+
+class PrefixError(UserError, ValueError):
+    """A prefix is malformed, or is not a legal path of the tree; the message names the step."""
 
 
 def prefix_text(steps: Steps) -> str:
@@ -42,13 +49,6 @@ def parse_prefix(text: str) -> Steps:
             f"{shown} is not a prefix: write / for the whole tree or leaf numbers after slashes, for example /1/2/2"
         )
     return () if text == ROOT else tuple(int(part) for part in text[1:].split("/"))
-
-
-def legal_prefix(tables: Tables, text: str) -> Steps:
-    """Parse ``text`` and check that it is a node of ``tables``' tree (:class:`PrefixError` naming the first bad step)."""
-    steps = parse_prefix(text)
-    check_prefix(tables, steps)
-    return steps
 
 
 def is_ancestor(a: Steps, b: Steps) -> bool:

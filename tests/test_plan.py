@@ -14,9 +14,9 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from foldfarm.kernel import PrefixError, count_below, prepare
+from foldfarm.kernel import count_below, legal_prefix, prepare
 from foldfarm.plan import batched, plan
-from foldfarm.prefix import first_overlap, is_ancestor, legal_prefix, parse_prefix, prefix_text
+from foldfarm.prefix import PrefixError, first_overlap, is_ancestor, parse_prefix, prefix_text
 from foldfarm.published import published
 
 SHAPES = ["2x2", "1x6", "2x3", "3x3", "2x4", "2x2x2", "3x4", "2x6", "1x9", "2x2x3", "4x4"]

@@ -1,11 +1,9 @@
-"""Prefix texts: the names of tasks within a run.
+"""Prefix texts as the store sees them: the names of tasks within a run.
 
-A prefix is ``/`` (the root: the whole search tree) or ``/a/b/c`` with
-positive integer components (at most 5 digits, no leading zeros), so each
-subtree has one spelling; :mod:`foldfarm.prefix` says what the steps mean.
-Its *depth* is the number of components and its *branch* the first
-component (``None`` for the root).  The store checks syntax and nesting
-only: whether a prefix is a node of the map's tree is the planner's business.
+The syntax and the subtree order are :mod:`foldfarm.prefix`'s; this module
+adds what the store records (depth, first component) and the one rule a split
+must obey.  The store checks syntax and nesting only: whether a prefix is a
+node of the map's tree is the kernel's business.
 
 >>> prefix_depth("/1/2/2/4"), prefix_branch("/1/2/2/4"), prefix_branch("/")
 (4, 1, None)
@@ -17,50 +15,37 @@ only: whether a prefix is a node of the map's tree is the planner's business.
 
 from __future__ import annotations
 
-import re
-
+from foldfarm import prefix as _prefix
 from foldfarm.store.errors import StoreError
 
-# Same syntax as foldfarm.prefix (kept here so the store does not import the kernel).
-_PREFIX = re.compile(r"/|(?:/[1-9][0-9]{0,4})+")
 
-#: Longest accepted prefix text, in characters, as in foldfarm.prefix (the
-#: column is unbounded TEXT; the bound keeps garbage from becoming a huge key).
-MAX_PREFIX_LENGTH = 6000
+def _steps(text: object) -> tuple[int, ...]:
+    try:
+        return _prefix.parse_prefix(text)  # type: ignore[arg-type]
+    except _prefix.PrefixError as exc:
+        raise StoreError(str(exc)) from None
 
 
 def check_prefix(text: object) -> str:
     """Return ``text`` if it is a prefix, else raise :class:`StoreError`."""
-    if not isinstance(text, str) or len(text) > MAX_PREFIX_LENGTH or not _PREFIX.fullmatch(text):
-        shown = repr(text) if len(repr(text)) <= 60 else repr(text)[:57] + "..."
-        raise StoreError(
-            f"{shown} is not a task prefix: write '/' for the whole tree or "
-            "positive integers after slashes, for example /1/2/4"
-        )
-    return text
+    _steps(text)
+    return text  # type: ignore[return-value]
 
 
 def prefix_depth(prefix: str) -> int:
     """Number of components: 0 for ``/``."""
-    return 0 if prefix == "/" else prefix.count("/")
+    return len(_steps(prefix))
 
 
 def prefix_branch(prefix: str) -> int | None:
     """First component, or ``None`` for the root."""
-    if prefix == "/":
-        return None
-    return int(prefix.split("/", 2)[1])
+    steps = _steps(prefix)
+    return steps[0] if steps else None
 
 
 def is_ancestor(a: str, b: str) -> bool:
     """True when subtree ``b`` lies strictly inside subtree ``a``."""
-    if a == "/":
-        return b != "/"
-    return b.startswith(a + "/")
-
-
-def _components(prefix: str) -> tuple[int, ...]:
-    return () if prefix == "/" else tuple(int(p) for p in prefix[1:].split("/"))
+    return a != b and _prefix.is_ancestor(_steps(a), _steps(b))
 
 
 def check_remainder(parent: str, children: list[str]) -> list[str]:
@@ -71,18 +56,17 @@ def check_remainder(parent: str, children: list[str]) -> list[str]:
     foldings would be counted twice.  An empty remainder is refused: a task
     whose budget covered everything is *done*, not split.
     """
-    children = [check_prefix(c) for c in children]
     if not children:
         raise StoreError(f"a split of {parent} needs at least one remainder prefix; record it as done instead")
-    for child in children:
-        if not is_ancestor(parent, child):
+    top = _steps(parent)
+    steps = [_steps(c) for c in children]
+    for child, s in zip(children, steps):
+        if s == top or not _prefix.is_ancestor(top, s):
             raise StoreError(f"remainder prefix {child} is not inside the split task {parent}")
-    # In lexicographic order of components a subtree's members directly
-    # follow its root, so checking neighbours finds every overlap.
-    ordered = sorted(children, key=_components)
-    for a, b in zip(ordered, ordered[1:], strict=False):
+    clash = _prefix.first_overlap(steps)
+    if clash is not None:
+        a, b = (_prefix.prefix_text(s) for s in clash)
         if a == b:
             raise StoreError(f"remainder prefix {a} appears twice in the split of {parent}")
-        if is_ancestor(a, b):
-            raise StoreError(f"remainder prefixes {a} and {b} overlap in the split of {parent}")
+        raise StoreError(f"remainder prefixes {a} and {b} overlap in the split of {parent}")
     return children
