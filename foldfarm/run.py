@@ -1,0 +1,602 @@
+"""Runs on a Dask cluster: the coordinator that plans, dispatches, records and resumes.
+
+Actors
+------
+The **coordinator** (this module, one process per run, holding the run's
+lease) is the only writer of the run's tasks.  **Workers** (Dask, one
+single-threaded worker per core) run :func:`work`: count one prefix within a
+budget and return the count, or the partial count and the remainder.  The
+**store** (:mod:`foldfarm.store`) is the source of truth; Dask's own state
+is disposable.
+
+Protocol
+--------
+1. *Plan*: create the run, then add the planner's prefixes in one
+   transaction.  A run whose plan never landed (state ``planned``, no
+   tasks) is planned again on resume; the plan is deterministic.
+2. *Dispatch*: keep at most :attr:`Settings.window` tasks per worker thread
+   in flight: take pending tasks from the store, mark them running, submit.
+3. *Record*: a finished task is recorded ``done`` (batched, one
+   transaction per batch); a task that ran out of budget is recorded
+   ``split`` with its remainder children in one transaction.  Counts become
+   part of the total only through the store.
+4. *Finish*: when nothing is open, store the total, run the checks
+   (:mod:`foldfarm.check`), release the lease.
+
+Failures
+--------
+A worker that dies mid-task loses that task only: the scheduler runs it
+again elsewhere, or, once Dask gives up on it, the coordinator resubmits it
+(up to :attr:`Settings.max_attempts`).  A coordinator that dies loses
+nothing recorded: on ``resume`` the tasks it had out (``running``) become
+pending again.  Ctrl-C stops submitting, cancels what is in flight, records
+what has arrived, returns the rest to pending and says how to resume.
+
+Decisions (:class:`Dispatch`, :func:`classify_failure`, :func:`stale_lease`,
+:func:`needs_plan`, :func:`target_tasks`) are plain functions and a small
+state object, tested without a cluster or a database; :func:`drive` is the
+thin loop that connects them to Dask and the store.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import socket
+import time
+from dataclasses import asdict, dataclass, field
+from typing import Any, Callable
+
+from foldfarm.errors import UserError
+
+#: Seconds without a heartbeat after which a lease may be taken over.
+LEASE_TTL = 60.0
+#: Seconds between heartbeats (well inside the TTL).
+HEARTBEAT_EVERY = 10.0
+#: Done results recorded per transaction, and the longest they wait for one.
+FLUSH_TASKS = 500
+FLUSH_SECONDS = 0.5
+
+
+@dataclass(frozen=True)
+class Settings:
+    """How a run is cut and driven; stored with the run so ``resume`` reuses it.
+
+    ``task_seconds``/``task_nodes`` bound one task's work (whichever comes
+    first; ``task_nodes`` 0 means no node bound); ``tasks`` is the planner's
+    target (0: choose from the cluster size); ``window`` is in-flight tasks
+    per worker thread.
+    """
+
+    task_seconds: float = 120.0
+    task_nodes: int = 0
+    tasks: int = 0
+    probes: int = 4
+    seed: int = 0
+    order: str = "fast"
+    window: int = 4
+    max_attempts: int = 3
+    audit: float = 0.01
+
+    @classmethod
+    def from_dict(cls, data: dict) -> Settings:
+        known = {k: v for k, v in data.items() if k in cls.__dataclass_fields__}
+        return cls(**known)
+
+    def to_dict(self) -> dict:
+        return asdict(self)
+
+
+# --------------------------------------------------------------------------
+# Worker side
+# --------------------------------------------------------------------------
+
+def work(sides: tuple[int, ...], prefixes: list[str], task_nodes: int, task_seconds: float) -> list[dict]:
+    """Count the subtrees below ``prefixes`` of the map with working sides ``sides``.
+
+    Runs on a Dask worker; each prefix is one task with its own budget.
+    Returns one plain dict per prefix: ``count`` (foldings), ``nodes``,
+    ``seconds``, ``complete``, ``remainder`` (prefix texts) and ``worker``
+    (this worker's address).
+    """
+    from foldfarm.kernel import count_below, tables_for
+    from foldfarm.prefix import parse_prefix, prefix_text
+
+    tables = tables_for(tuple(sides))
+    address = _worker_address()
+    results = []
+    for prefix in prefixes:
+        out = count_below(tables, parse_prefix(prefix), budget=task_nodes or None, seconds=task_seconds or None)
+        results.append({
+            "count": out.count,
+            "nodes": out.nodes,
+            "seconds": out.seconds,
+            "complete": out.complete,
+            "remainder": [prefix_text(r) for r in out.remainder],
+            "worker": address,
+        })
+    return results
+
+
+def _worker_address() -> str | None:
+    try:
+        from distributed import get_worker
+
+        return get_worker().address
+    except (ImportError, ValueError):
+        return None
+
+
+def warm_worker() -> bool:
+    """Load the compiled kernel on a worker before its first task."""
+    from foldfarm.kernel import warm
+
+    warm()
+    return True
+
+
+# --------------------------------------------------------------------------
+# Decisions (no I/O)
+# --------------------------------------------------------------------------
+
+def target_tasks(settings: Settings, threads: int) -> int:
+    """Planner target: the user's, or 64 tasks per worker thread (at least 256).
+
+    Tasks also split themselves when they outgrow their budget, so the plan
+    only has to give every thread work from the start.
+    """
+    return settings.tasks if settings.tasks > 0 else max(256, 64 * threads)
+
+
+def needs_plan(state: str, tasks: int) -> bool:
+    """Whether a run's plan still has to be stored (a crash may have hit before it landed)."""
+    return state == "planned" and tasks == 0
+
+
+def classify_failure(error: BaseException, attempts: int, max_attempts: int) -> str:
+    """``"retry"`` a task whose worker died, while attempts remain; else ``"fail"``.
+
+    Any other exception comes from the task itself and would come again.
+    """
+    lost_worker = type(error).__name__ in {"KilledWorker", "CommClosedError", "FutureCancelledError"}
+    return "retry" if lost_worker and attempts < max_attempts else "fail"
+
+
+def stale_lease(holder: str, here: str, alive: Callable[[int], bool]) -> bool:
+    """Whether a lease holder ``host:pid`` is a dead process on this host (safe to take over)."""
+    host, _, pid = holder.rpartition(":")
+    return host == here and pid.isdigit() and not alive(int(pid))
+
+
+#: A bundle (one Dask task) should take about this many seconds of work...
+BUNDLE_SECONDS = 0.2
+#: ...but hold at most this many prefix tasks.
+BUNDLE_MAX = 256
+
+
+def bundle_size(mean_task_seconds: float | None) -> int:
+    """Prefix tasks per Dask task: enough that Dask's ~ms per-task overhead stays small.
+
+    Unknown speed starts at one task per bundle; slow tasks (the normal
+    case on a cluster) always travel alone.
+    """
+    if not mean_task_seconds or mean_task_seconds <= 0:
+        return 1
+    return max(1, int(min(BUNDLE_MAX, BUNDLE_SECONDS / mean_task_seconds)))
+
+
+Task = tuple[int, str, int]  # task id, prefix, attempt
+
+
+@dataclass
+class Dispatch:
+    """In-flight bookkeeping of the coordinator.
+
+    State, as named sets:
+
+    ``claimed``
+        (task id, prefix) taken from the store and marked running, not yet
+        submitted (claimed in bulk to spare the store a transaction a task).
+    ``flying``
+        bundle key -> the tasks it carries: submitted, not yet answered.
+    ``done``
+        results waiting to be recorded (a task in it is still ``running`` in
+        the store: if we die now, it runs again; nothing is lost).
+
+    Invariant: a task id is in at most one of them, and every task in them
+    is ``running`` in the store, so a crash returns all of them to pending
+    on resume.  At most ``capacity`` bundles fly at once.
+    """
+
+    capacity: int
+    claimed: list[tuple[int, str]] = field(default_factory=list)
+    flying: dict[str, list[Task]] = field(default_factory=dict)
+    done: list[Any] = field(default_factory=list)
+    last_flush: float = 0.0
+    mean_seconds: float | None = None
+
+    def room(self) -> int:
+        """How many more bundles to submit now."""
+        return max(0, self.capacity - len(self.flying))
+
+    def wanted(self) -> int:
+        """How many claimed tasks it takes to fill the room."""
+        return self.room() * bundle_size(self.mean_seconds)
+
+    def bundles(self) -> list[list[Task]]:
+        """Cut the claimed tasks into bundles for the room there is (first attempts)."""
+        size = bundle_size(self.mean_seconds)
+        out = []
+        while self.claimed and len(out) < self.room():
+            head, self.claimed = self.claimed[:size], self.claimed[size:]
+            out.append([(t, p, 1) for t, p in head])
+        return out
+
+    def submitted(self, key: str, tasks: list[Task]) -> None:
+        self.flying[key] = tasks
+
+    def answered(self, key: str) -> list[Task]:
+        return self.flying.pop(key)
+
+    def observed(self, seconds: float) -> None:
+        """Fold one task's run time into the running mean (weight 1/16) that sizes bundles."""
+        self.mean_seconds = seconds if self.mean_seconds is None else self.mean_seconds + (seconds - self.mean_seconds) / 16
+
+    def busy(self) -> bool:
+        return bool(self.flying or self.claimed)
+
+    def should_flush(self, now: float, idle: bool) -> bool:
+        """Record waiting results when there are many, they are old, or nothing else is going on."""
+        if not self.done:
+            return False
+        return idle or len(self.done) >= FLUSH_TASKS or now - self.last_flush >= FLUSH_SECONDS
+
+
+@dataclass
+class Tally:
+    """Progress of a run as the coordinator sees it, kept in memory (no store queries).
+
+    ``known`` counts tasks ever created (done + split + open); ``counted`` is
+    foldings in answered tasks, including partial counts of splits.
+    """
+
+    known: int
+    done: int
+    counted: int
+    nodes: int
+    failed: int = 0
+    estimated_nodes: float | None = None
+    started: float = field(default_factory=time.monotonic)
+    nodes_at_start: int = 0
+
+    @classmethod
+    def start(cls, progress, estimated_nodes: float | None = None) -> Tally:
+        return cls(known=sum(progress.tasks.values()), done=progress.tasks.get("done", 0) + progress.tasks.get("split", 0),
+                   counted=progress.counted, nodes=progress.nodes, failed=progress.tasks.get("failed", 0),
+                   estimated_nodes=estimated_nodes, nodes_at_start=progress.nodes)
+
+    def answered(self, out: dict) -> None:
+        self.done += 1
+        self.counted += out["count"]
+        self.nodes += out["nodes"]
+        self.known += len(out["remainder"])
+
+    def rate(self, now: float | None = None) -> float:
+        """Nodes per second since this coordinator started."""
+        elapsed = (now or time.monotonic()) - self.started
+        return (self.nodes - self.nodes_at_start) / elapsed if elapsed > 0 else 0.0
+
+    def eta(self, now: float | None = None) -> float | None:
+        """Seconds left, from the estimated nodes still to search (None if unknown)."""
+        return eta_seconds(self.estimated_nodes, self.nodes, self.rate(now))
+
+
+# --------------------------------------------------------------------------
+# The loop (I/O)
+# --------------------------------------------------------------------------
+
+@dataclass
+class Summary:
+    """What :func:`drive` reports: the run, its total when finished, and how it went."""
+
+    run: int
+    shape: str
+    state: str
+    count: int | None
+    tasks: int
+    splits: int
+    nodes: int
+    core_seconds: float
+    seconds: float
+    checks: dict | None = None
+
+    def as_json(self) -> dict:
+        return {
+            "run": self.run, "shape": self.shape, "state": self.state, "count": self.count,
+            "tasks": self.tasks, "splits": self.splits, "nodes": self.nodes,
+            "core_seconds": round(self.core_seconds, 3), "seconds": round(self.seconds, 3),
+            "checks": self.checks,
+        }
+
+
+class Stopped(Exception):
+    """The user interrupted the run; everything in flight went back to pending."""
+
+    def __init__(self, run: int):
+        super().__init__(f"run {run} stopped")
+        self.run = run
+
+
+def holder_name() -> str:
+    """This coordinator's lease holder name, ``host:pid``."""
+    return f"{socket.gethostname()}:{os.getpid()}"
+
+
+def _pid_alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
+def take_lease(store, run_id: int, holder: str, force: bool = False) -> None:
+    """Become the run's driver; take over a lease left by a dead process on this host."""
+    from foldfarm.store import LeaseHeld
+
+    try:
+        store.acquire_lease(run_id, holder, LEASE_TTL, force=force)
+    except LeaseHeld:
+        current = store.lease(run_id)
+        if current is not None and stale_lease(current.holder, socket.gethostname(), _pid_alive):
+            store.acquire_lease(run_id, holder, LEASE_TTL, force=True)
+        else:
+            raise
+
+
+def create(store, shape_text: str, settings: Settings, threads: int) -> int:
+    """Create a run of ``shape_text`` and store its plan; return the run id."""
+    from foldfarm.shape import parse_shape
+    from foldfarm.kernel import prepare
+
+    shape = parse_shape(shape_text)
+    tables = prepare(shape, settings.order)
+    settings = Settings.from_dict({**settings.to_dict(), "tasks": target_tasks(settings, threads)})
+    run_id = store.create_run(shape.text, "x".join(map(str, tables.sides)) or "1", settings.to_dict())
+    store_plan(store, run_id, tables, settings)
+    return run_id
+
+
+def store_plan(store, run_id: int, tables, settings: Settings) -> int:
+    """Add the deterministic plan of a run as pending tasks, in one transaction."""
+    from foldfarm.plan import plan
+    from foldfarm.prefix import prefix_text
+
+    return store.add_tasks(run_id, (prefix_text(p) for p in plan(tables, settings.tasks, settings.probes,
+                                                                  settings.seed)))
+
+
+def drive(store, client, run_id: int, *, holder: str | None = None, take_over: bool = False,
+          on_progress: Callable[[Any], None] | None = None) -> Summary:
+    """Drive run ``run_id`` on ``client`` until nothing is open; record everything in ``store``.
+
+    Raises :class:`Stopped` after a clean stop on Ctrl-C.
+    """
+    from foldfarm.kernel import tables_for
+    from foldfarm.store import TaskResult
+
+    started = time.perf_counter()
+    holder = holder or holder_name()
+    run = store.get_run(run_id)
+    if run.state in ("done", "verified", "suspect"):
+        return finish(store, run_id, started)
+    settings = Settings.from_dict(run.settings)
+    sides = tuple(int(p) for p in run.side_order.split("x") if int(p) > 1)
+    take_lease(store, run_id, holder, force=take_over)
+    try:
+        if needs_plan(run.state, sum(store.progress(run_id).tasks.values())):
+            store_plan(store, run_id, tables_for(sides), settings)
+        store.reset_running(run_id)
+        if run.state != "running":
+            store.set_run_state(run_id, "running")
+        client.run(warm_worker)
+        threads = max(1, sum(client.nthreads().values()))
+        dispatch = Dispatch(capacity=settings.window * threads, last_flush=time.monotonic())
+        futures: dict[Any, str] = {}  # future -> bundle key
+        from distributed import as_completed
+
+        pool = as_completed([], with_results=True, raise_errors=False)  # results arrive with the futures
+        beat = shown = time.monotonic()
+        tally = Tally.start(store.progress(run_id), run.settings.get("estimated_nodes"))
+
+        def submit(bundles: list[list[Task]]) -> None:
+            """Send bundles of (task id, prefix, attempt) to the cluster in one graph update."""
+            if not bundles:
+                return
+            keys = [f"foldfarm-{run_id}-{b[0][0]}-{b[0][2]}" for b in bundles]
+            futs = client.map(work, [sides] * len(bundles), [[p for _, p, _ in b] for b in bundles],
+                              [settings.task_nodes] * len(bundles), [settings.task_seconds] * len(bundles),
+                              pure=False, key=keys)
+            for fut, key, bundle in zip(futs, keys, bundles):
+                futures[fut] = key
+                dispatch.submitted(key, bundle)
+            pool.update(futs)
+
+        def refill() -> None:
+            wanted = dispatch.wanted()
+            if wanted <= 0:
+                return
+            if len(dispatch.claimed) < wanted:
+                # Claim pending tasks in bulk: one read and one write transaction for many tasks.
+                rows = store.next_pending(run_id, max(wanted, 4 * dispatch.capacity))
+                if rows:
+                    store.mark_running([r.id for r in rows])
+                    dispatch.claimed.extend((r.id, r.prefix) for r in rows)
+            submit(dispatch.bundles())
+
+        def flush() -> None:
+            if dispatch.done:
+                report = store.record_done_many(dispatch.done)
+                dispatch.done = []
+                if report.conflicts:
+                    raise UserError(str(report.conflicts[0]))
+            dispatch.last_flush = time.monotonic()
+
+        def answered(task: Task, out: dict) -> None:
+            task_id = task[0]
+            tally.answered(out)
+            dispatch.observed(out["seconds"])
+            if out["complete"]:
+                dispatch.done.append(TaskResult(task_id, out["count"], out["nodes"], out["seconds"], out["worker"]))
+            else:
+                store.record_split(task_id, out["count"], out["nodes"], out["seconds"], out["worker"],
+                                   out["remainder"])
+
+        def failed(bundle: list[Task], error: BaseException) -> None:
+            again = []
+            for task_id, prefix, attempts in bundle:
+                if classify_failure(error, attempts, settings.max_attempts) == "retry":
+                    again.append((task_id, prefix, attempts + 1))
+                else:
+                    store.mark_failed(task_id, f"{type(error).__name__}: {_first_line(error)}")
+                    tally.failed += 1
+            if again:
+                store.mark_running([t for t, _, _ in again])
+                submit([again])
+
+        try:
+            refill()
+            while dispatch.busy():
+                for fut, out in pool.next_batch(block=True):
+                    bundle = dispatch.answered(futures.pop(fut))
+                    if fut.status == "finished":
+                        for task, result in zip(bundle, out):
+                            answered(task, result)
+                    else:
+                        failed(bundle, out if isinstance(out, BaseException) else fut.exception())
+                now = time.monotonic()
+                if dispatch.should_flush(now, idle=not dispatch.flying):
+                    flush()
+                if now - beat >= HEARTBEAT_EVERY:
+                    store.heartbeat(run_id, holder)
+                    beat = now
+                refill()
+                if on_progress is not None and now - shown >= 0.25:
+                    on_progress(tally)
+                    shown = now
+            flush()
+        except KeyboardInterrupt:
+            _stop(store, client, run_id, futures, flush)
+            raise Stopped(run_id) from None
+        return finish(store, run_id, started)
+    finally:
+        try:
+            store.release_lease(run_id, holder)
+        except Exception:  # the lease expires on its own; never mask the real outcome
+            pass
+
+
+def _stop(store, client, run_id: int, futures: dict, flush: Callable[[], None]) -> None:
+    """Ctrl-C: cancel what is in flight, record what arrived, return the rest to pending."""
+    import signal
+
+    previous = signal.signal(signal.SIGINT, signal.SIG_IGN)  # a second Ctrl-C must not cut this short
+    try:
+        try:
+            client.cancel(list(futures))
+        except Exception:
+            pass
+        flush()
+        store.reset_running(run_id)
+        store.set_run_state(run_id, "stopped")
+    finally:
+        signal.signal(signal.SIGINT, previous)
+
+
+def finish(store, run_id: int, started: float) -> Summary:
+    """Store the total of a run with nothing open and run its checks; summarise."""
+    progress = store.progress(run_id)
+    run = store.get_run(run_id)
+    checks = run.checks
+    if progress.open == 0 and run.state == "running":
+        store.finish_run(run_id, progress.counted)
+        try:
+            from foldfarm import check
+        except ImportError:  # checks arrive with the aggregator
+            check = None
+        if check is not None:
+            checks = check.verify_run(store, run_id)
+        run = store.get_run(run_id)
+    done = progress.tasks.get("done", 0)
+    return Summary(run=run_id, shape=run.shape, state=run.state,
+                   count=run.total if run.total is not None else None, tasks=done,
+                   splits=progress.tasks.get("split", 0), nodes=progress.nodes,
+                   core_seconds=progress.core_seconds, seconds=time.perf_counter() - started, checks=checks)
+
+
+# --------------------------------------------------------------------------
+# Clusters
+# --------------------------------------------------------------------------
+
+class SchedulerError(UserError):
+    """The Dask scheduler cannot be reached."""
+
+
+def connect(scheduler: str | None, workers: int | None, quiet: bool = True):
+    """A Dask client: to ``scheduler`` if given, else to a new local cluster.
+
+    The local cluster has ``workers`` single-threaded worker processes (default:
+    one per core) bound to 127.0.0.1.  Returns ``(client, cluster_or_None)``.
+    """
+    import logging
+
+    from distributed import Client, LocalCluster
+
+    if quiet:
+        for name in ("distributed", "distributed.nanny", "distributed.scheduler", "distributed.worker"):
+            logging.getLogger(name).setLevel(logging.ERROR)
+    if scheduler:
+        probe_scheduler(scheduler)
+        try:
+            return Client(scheduler, timeout="10s"), None
+        except (OSError, TimeoutError, ValueError) as exc:
+            raise SchedulerError(f"cannot reach the Dask scheduler at {scheduler}: {_first_line(exc)}") from None
+    n = workers or os.cpu_count() or 1
+    if n < 1:
+        raise UserError("--workers must be at least 1")
+    cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True, host="127.0.0.1",
+                           dashboard_address="127.0.0.1:0", silence_logs=logging.ERROR if quiet else logging.WARNING)
+    return Client(cluster), cluster
+
+
+def probe_scheduler(address: str, timeout: float = 5.0) -> None:
+    """Fail fast, in one line, on a malformed or refused ``tcp://host:port`` scheduler address."""
+    from urllib.parse import urlsplit
+
+    parts = urlsplit(address if "://" in address else f"tcp://{address}")
+    try:
+        host, port = parts.hostname, parts.port
+    except ValueError:
+        host = port = None
+    if parts.scheme not in ("tcp", "tls") or not host or not port:
+        raise SchedulerError(f"{address!r} is not a scheduler address: write tcp://HOST:PORT, for example "
+                             "tcp://127.0.0.1:8786")
+    if parts.scheme == "tcp":
+        try:
+            socket.create_connection((host, port), timeout=timeout).close()
+        except OSError as exc:
+            raise SchedulerError(f"cannot reach the Dask scheduler at {address}: {exc.strerror or exc}") from None
+
+
+def _first_line(exc: BaseException) -> str:
+    text = str(exc).strip().splitlines()
+    return text[0] if text else type(exc).__name__
+
+
+def eta_seconds(estimated_nodes: float | None, nodes_done: int, rate: float) -> float | None:
+    """Seconds left from the estimated remaining nodes at ``rate`` nodes/s (None if unknown)."""
+    if not estimated_nodes or rate <= 0:
+        return None
+    return max(0.0, estimated_nodes - nodes_done) / rate if math.isfinite(rate) else None

@@ -1,0 +1,198 @@
+"""Runs on a real Dask cluster on loopback: a `dask scheduler` and `dask worker` subprocesses.
+
+Nothing is mocked.  Every run must end with the published total (OEIS,
+named beside each value) and a store whose done tasks partition the tree.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pytest
+
+from foldfarm.prefix import first_overlap, parse_prefix
+from foldfarm.store import Store
+
+pytestmark = pytest.mark.slow
+
+DASK = [sys.executable, "-m", "distributed.cli.dask_scheduler"]
+WORKER = [sys.executable, "-m", "distributed.cli.dask_worker"]
+# Check values: OEIS A001418 (4x4) and A001416 (3x9).
+SMALL, SMALL_COUNT = "4x4", 300608
+LONG, LONG_COUNT = "3x9", 1944012744
+
+
+class Cluster:
+    """A scheduler and worker processes on 127.0.0.1, stopped on close."""
+
+    def __init__(self, tmp: Path, workers: int = 2):
+        tmp.mkdir(parents=True, exist_ok=True)
+        self.file = tmp / "scheduler.json"
+        quiet = {"stdout": subprocess.DEVNULL, "stderr": subprocess.DEVNULL}
+        self.scheduler = subprocess.Popen(DASK + ["--host", "127.0.0.1", "--port", "0", "--no-dashboard",
+                                                  "--scheduler-file", str(self.file)], **quiet)
+        deadline = time.monotonic() + 60
+        while not self.file.exists():
+            assert time.monotonic() < deadline, "scheduler did not start"
+            time.sleep(0.1)
+        time.sleep(0.2)
+        self.address = json.loads(self.file.read_text())["address"]
+        self.workers = [
+            subprocess.Popen(WORKER + [self.address, "--nthreads", "1", "--no-nanny", "--no-dashboard",
+                                       "--host", "127.0.0.1"], **quiet)
+            for _ in range(workers)
+        ]
+        from distributed import Client
+
+        with Client(self.address, timeout="30s") as client:
+            client.wait_for_workers(workers, timeout=60)
+
+    def close(self) -> None:
+        for p in self.workers + [self.scheduler]:
+            if p.poll() is None:
+                p.terminate()
+        for p in self.workers + [self.scheduler]:
+            try:
+                p.wait(timeout=20)
+            except subprocess.TimeoutExpired:
+                p.kill()
+
+
+@pytest.fixture(scope="module")
+def cluster(tmp_path_factory):
+    c = Cluster(tmp_path_factory.mktemp("dask"))
+    yield c
+    c.close()
+
+
+def foldfarm(*args: str, timeout: float = 300) -> subprocess.CompletedProcess:
+    return subprocess.run([sys.executable, "-m", "foldfarm", *args], capture_output=True, text=True, timeout=timeout)
+
+
+def start(*args: str) -> subprocess.Popen:
+    return subprocess.Popen([sys.executable, "-m", "foldfarm", *args], stdout=subprocess.PIPE,
+                            stderr=subprocess.PIPE, text=True)
+
+
+def assert_partition(url: str, run: int, total: int) -> dict:
+    """The done tasks partition the tree: no open task, no overlap, counts add up to ``total``."""
+    with Store(url) as store:
+        progress = store.progress(run)
+        assert progress.open == 0, progress.tasks
+        done = dict(store.done_tasks(run))
+        assert first_overlap([parse_prefix(p) for p in done]) is None
+        assert progress.counted == total
+        info = store.get_run(run)
+        assert info.total == total and info.state in ("done", "verified")
+        return progress.tasks
+
+
+def wait_for_done(url: str, run: int, at_least: int, proc: subprocess.Popen, timeout: float = 120) -> None:
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        assert proc.poll() is None, "the run finished before it could be interrupted"
+        try:
+            with Store(url) as store:
+                if store.progress(run).tasks.get("done", 0) >= at_least:
+                    return
+        except Exception:  # the run may not exist yet
+            pass
+        time.sleep(0.05)
+    raise AssertionError("the run made no progress")
+
+
+def snapshot(url: str, run: int) -> dict[str, tuple]:
+    """(count, finished_at, attempts) of every done task, to show resume does not redo them."""
+    from sqlalchemy import select
+
+    from foldfarm.store.models import Task
+
+    with Store(url) as store, store.engine.connect() as conn:
+        rows = conn.execute(select(Task.prefix, Task.count, Task.finished_at, Task.attempts)
+                            .where(Task.run_id == run, Task.state == "done"))
+        return {r.prefix: (r.count, r.finished_at, r.attempts) for r in rows}
+
+
+@pytest.mark.parametrize("backend", ["sqlite", pytest.param("postgres", marks=pytest.mark.postgres)])
+def test_tiny_budgets_split_many_times_and_give_the_published_total(cluster, backend, request, tmp_path):
+    if backend == "postgres":
+        if not os.environ.get("FOLDFARM_TEST_POSTGRES_URL"):
+            pytest.skip("FOLDFARM_TEST_POSTGRES_URL is not set")
+        url = request.getfixturevalue("new_store_url")()
+    else:
+        url = f"sqlite:///{tmp_path / 'tiny.sqlite'}"
+    out = foldfarm("run", SMALL, "--scheduler", cluster.address, "--store", url, "--task-nodes", "40",
+                   "--tasks", "8", "--json")
+    assert out.returncode == 0, out.stderr
+    summary = json.loads(out.stdout)
+    assert summary["count"] == SMALL_COUNT, f"{SMALL}: OEIS A001418 publishes {SMALL_COUNT}"
+    tasks = assert_partition(url, summary["run"], SMALL_COUNT)
+    assert tasks["split"] >= 50 and tasks["done"] >= 200, tasks
+
+
+def test_killed_worker_loses_nothing(tmp_path):
+    own = Cluster(tmp_path / "own")
+    try:
+        url = f"sqlite:///{tmp_path / 'kill-worker.sqlite'}"
+        proc = start("run", LONG, "--scheduler", own.address, "--store", url, "--task-nodes", "300000",
+                     "--json", "--quiet")
+        wait_for_done(url, 1, 40, proc)
+        own.workers[0].send_signal(signal.SIGKILL)
+        stdout, stderr = proc.communicate(timeout=300)
+        assert proc.returncode == 0, stderr
+        assert json.loads(stdout)["count"] == LONG_COUNT, f"{LONG}: OEIS A001416 publishes {LONG_COUNT}"
+        assert own.workers[0].poll() is not None  # it really died
+        assert_partition(url, 1, LONG_COUNT)
+    finally:
+        own.close()
+
+
+@pytest.mark.parametrize("how", [signal.SIGKILL, signal.SIGINT], ids=["kill-9", "ctrl-c"])
+def test_interrupted_coordinator_resumes_without_recounting(cluster, tmp_path, how):
+    url = f"sqlite:///{tmp_path / 'coordinator.sqlite'}"
+    proc = start("run", LONG, "--scheduler", cluster.address, "--store", url, "--task-nodes", "300000",
+                 "--json", "--quiet")
+    wait_for_done(url, 1, 40, proc)
+    proc.send_signal(how)
+    _, stderr = proc.communicate(timeout=120)
+    before = snapshot(url, 1)
+    assert len(before) >= 40
+    with Store(url) as store:
+        state = store.get_run(1).state
+        running = store.progress(1).tasks["running"]
+    if how == signal.SIGINT:
+        assert proc.returncode == 130
+        lines = stderr.strip().splitlines()
+        assert lines and "resume with: foldfarm resume 1" in lines[-1], stderr
+        assert state == "stopped" and running == 0  # in-flight tasks went back to pending
+    else:
+        assert proc.returncode == -signal.SIGKILL and state == "running"
+
+    out = foldfarm("resume", "1", "--scheduler", cluster.address, "--store", url, "--json", "--quiet")
+    assert out.returncode == 0, out.stderr
+    assert json.loads(out.stdout)["count"] == LONG_COUNT, f"{LONG}: OEIS A001416 publishes {LONG_COUNT}"
+    assert_partition(url, 1, LONG_COUNT)
+    after = snapshot(url, 1)
+    assert all(after[p] == before[p] for p in before), "a task recorded done was counted again"
+
+
+def test_unreachable_scheduler_is_one_line(tmp_path):
+    out = foldfarm("run", "2x3", "--scheduler", "tcp://127.0.0.1:1", "--store", f"sqlite:///{tmp_path / 'x.sqlite'}")
+    assert out.returncode == 2
+    assert out.stderr.count("\n") == 1 and "cannot reach the Dask scheduler" in out.stderr, out.stderr
+
+
+def test_local_cluster_default(tmp_path):
+    url = f"sqlite:///{tmp_path / 'local.sqlite'}"
+    out = foldfarm("run", "3x5", "--workers", "2", "--store", url, "--json")
+    assert out.returncode == 0, out.stderr
+    assert json.loads(out.stdout)["count"] == 201240  # OEIS A001416, 3x5
+    status = foldfarm("status", "--store", url, "--json")
+    runs = json.loads(status.stdout)["runs"]
+    assert runs[0]["run"] == 1 and runs[0]["state"] in ("done", "verified") and runs[0]["pending"] == 0

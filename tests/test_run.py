@@ -1,0 +1,136 @@
+"""The coordinator's decisions, without a cluster or a database."""
+
+from __future__ import annotations
+
+import pytest
+from hypothesis import given
+from hypothesis import strategies as st
+
+from foldfarm.job import JobError, is_job_file, load_job
+from foldfarm.run import (BUNDLE_MAX, Dispatch, Settings, Tally, bundle_size, classify_failure, eta_seconds,
+                          needs_plan, stale_lease, target_tasks)
+from foldfarm.store import Progress
+
+
+class KilledWorker(Exception):  # same name as distributed's: classified by name
+    pass
+
+
+def test_lost_worker_is_retried_until_attempts_run_out():
+    assert classify_failure(KilledWorker("x"), attempts=1, max_attempts=3) == "retry"
+    assert classify_failure(KilledWorker("x"), attempts=3, max_attempts=3) == "fail"
+    assert classify_failure(ValueError("bug"), attempts=1, max_attempts=3) == "fail"
+
+
+def test_stale_lease_only_for_a_dead_process_on_this_host():
+    alive = {100}
+    assert stale_lease("node7:200", "node7", lambda pid: pid in alive)
+    assert not stale_lease("node7:100", "node7", lambda pid: pid in alive)
+    assert not stale_lease("node8:200", "node7", lambda pid: pid in alive)  # another host: cannot tell
+    assert not stale_lease("node7", "node7", lambda pid: False)
+
+
+def test_plan_is_stored_again_only_when_it_never_landed():
+    assert needs_plan("planned", 0)
+    assert not needs_plan("planned", 10)
+    assert not needs_plan("running", 0)
+
+
+def test_target_tasks():
+    assert target_tasks(Settings(tasks=10), threads=2) == 10
+    assert target_tasks(Settings(), threads=2) == 256
+    assert target_tasks(Settings(), threads=100) == 6400
+
+
+def test_settings_round_trip_ignores_unknown_keys():
+    s = Settings(task_seconds=5, task_nodes=7, tasks=9)
+    assert Settings.from_dict({**s.to_dict(), "estimated_nodes": 1e9}) == s
+
+
+@given(st.one_of(st.none(), st.floats(min_value=0, max_value=1e4, allow_nan=False)))
+def test_bundle_size_is_bounded(mean):
+    size = bundle_size(mean)
+    assert 1 <= size <= BUNDLE_MAX
+    if mean is not None and mean >= 1:
+        assert size == 1  # real tasks travel alone
+
+
+@given(st.lists(st.integers(0, 5), max_size=40), st.integers(1, 6))
+def test_dispatch_never_exceeds_capacity_and_loses_no_task(answers, capacity):
+    d = Dispatch(capacity=capacity, mean_seconds=0.01)
+    d.claimed = [(i, f"/{i}") for i in range(1, 200)]
+    seen = set()
+    key = 0
+    for a in answers:
+        for bundle in d.bundles():
+            key += 1
+            d.submitted(str(key), bundle)
+        assert len(d.flying) <= capacity
+        for k in list(d.flying)[:a]:
+            for task_id, _, _ in d.answered(k):
+                assert task_id not in seen
+                seen.add(task_id)
+    in_flight = {t for b in d.flying.values() for t, _, _ in b}
+    claimed = {t for t, _ in d.claimed}
+    assert seen | in_flight | claimed == set(range(1, 200))
+    assert not (seen & in_flight) and not (in_flight & claimed) and not (seen & claimed)
+
+
+def test_flush_policy():
+    d = Dispatch(capacity=2, last_flush=100.0)
+    assert not d.should_flush(1000.0, idle=True)  # nothing to record
+    d.done = [object()]
+    assert d.should_flush(100.1, idle=True)
+    assert not d.should_flush(100.1, idle=False)
+    assert d.should_flush(100.6, idle=False)
+
+
+def test_tally_and_eta():
+    p = Progress(run_id=1, shape="3x8", state="running", tasks={"pending": 3, "running": 0, "done": 1, "split": 0,
+                                                                    "failed": 0}, counted=10, nodes=100)
+    t = Tally.start(p, estimated_nodes=1100.0)
+    t.started -= 10.0
+    t.answered({"count": 5, "nodes": 100, "remainder": ["/1/2", "/1/3"]})
+    assert (t.known, t.done, t.counted, t.nodes) == (6, 2, 15, 200)
+    assert t.rate() == pytest.approx(10.0, rel=0.01)
+    assert t.eta() == pytest.approx(90.0, rel=0.01)
+    assert eta_seconds(None, 0, 5.0) is None and eta_seconds(10.0, 0, 0.0) is None
+
+
+# ---- job files ---------------------------------------------------------------------------
+
+def test_job_file(tmp_path):
+    path = tmp_path / "tern.toml"
+    path.write_text('name = "tern"\nshape = "3x8"\ntask_seconds = 30\nworkers = 2\n')
+    job = load_job(str(path))
+    assert is_job_file(str(path)) and not is_job_file("3x8")
+    assert (job.shape, job.name, job.workers, job.settings) == ("3x8", "tern", 2, {"task_seconds": 30})
+
+
+@pytest.mark.parametrize("text, why", [
+    ("shape = ", "not valid TOML"),
+    ('shape = "3x"', "side is missing"),
+    ('name = "x"', "has no shape"),
+    ('shape = "3x8"\nbudget = 5', "unknown key 'budget'"),
+    ('shape = "3x8"\nworkers = "two"', "wrong type"),
+    ('shape = "3x8"\ntask_seconds = true', "wrong type"),
+])
+def test_bad_job_files(tmp_path, text, why):
+    path = tmp_path / "bad.toml"
+    path.write_text(text)
+    with pytest.raises(JobError, match=why):
+        load_job(str(path))
+
+
+def test_missing_job_file(tmp_path):
+    with pytest.raises(JobError, match="does not exist"):
+        load_job(str(tmp_path / "nope.toml"))
+
+
+def test_shipped_job_files_load():
+    from pathlib import Path
+
+    jobs = sorted(Path(__file__).resolve().parents[1].joinpath("jobs").glob("*.toml"))
+    assert jobs
+    for path in jobs:
+        assert load_job(str(path)).shape
