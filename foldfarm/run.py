@@ -490,7 +490,7 @@ def drive(store, client, run_id: int, *, holder: str | None = None, take_over: b
         except KeyboardInterrupt:
             _stop(store, client, run_id, futures, flush)
             raise Stopped(run_id) from None
-        return finish(store, run_id, started)
+        return finish(store, run_id, started, client)
     finally:
         try:
             store.release_lease(run_id, holder)
@@ -515,8 +515,8 @@ def _stop(store, client, run_id: int, futures: dict, flush: Callable[[], None]) 
         signal.signal(signal.SIGINT, previous)
 
 
-def finish(store, run_id: int, started: float) -> Summary:
-    """Store the total of a run with nothing open and run its checks; summarise."""
+def finish(store, run_id: int, started: float, client=None) -> Summary:
+    """Store the total of a run with nothing open and run its checks (audits on ``client``); summarise."""
     progress = store.progress(run_id)
     run = store.get_run(run_id)
     checks = run.checks
@@ -527,7 +527,7 @@ def finish(store, run_id: int, started: float) -> Summary:
         except ImportError:  # checks arrive with the aggregator
             check = None
         if check is not None:
-            checks = check.verify_run(store, run_id)
+            checks = check.verify_run(store, run_id, client=client)
         run = store.get_run(run_id)
     done = progress.tasks.get("done", 0)
     return Summary(run=run_id, shape=run.shape, state=run.state,
