@@ -408,7 +408,7 @@ def drive(store, client, run_id: int, *, holder: str | None = None, take_over: b
         from distributed import as_completed
 
         pool = as_completed([], with_results=True, raise_errors=False)  # results arrive with the futures
-        beat = shown = time.monotonic()
+        shown = time.monotonic()
         tally = Tally.start(store.progress(run_id), run.settings.get("estimated_nodes"))
 
         def submit(bundles: list[list[Task]]) -> None:
@@ -466,6 +466,7 @@ def drive(store, client, run_id: int, *, holder: str | None = None, take_over: b
                 store.mark_running([t for t, _, _ in again])
                 submit([again])
 
+        heart = Heartbeat(store, run_id, holder)
         try:
             refill()
             while dispatch.busy():
@@ -479,9 +480,7 @@ def drive(store, client, run_id: int, *, holder: str | None = None, take_over: b
                 now = time.monotonic()
                 if dispatch.should_flush(now, idle=not dispatch.flying):
                     flush()
-                if now - beat >= HEARTBEAT_EVERY:
-                    store.heartbeat(run_id, holder)
-                    beat = now
+                heart.check()
                 refill()
                 if on_progress is not None and now - shown >= 0.25:
                     on_progress(tally)
@@ -490,12 +489,53 @@ def drive(store, client, run_id: int, *, holder: str | None = None, take_over: b
         except KeyboardInterrupt:
             _stop(store, client, run_id, futures, flush)
             raise Stopped(run_id) from None
+        finally:
+            heart.stop()
         return finish(store, run_id, started, client)
     finally:
         try:
             store.release_lease(run_id, holder)
         except Exception:  # the lease expires on its own; never mask the real outcome
             pass
+
+
+class Heartbeat:
+    """Renews the run's lease every :data:`HEARTBEAT_EVERY` seconds from a daemon thread.
+
+    The coordinator may wait on the cluster for longer than the lease lives
+    (tasks of minutes), so the beat cannot ride on the main loop.  If the
+    lease is lost (another coordinator took over), :meth:`check` raises in
+    the main loop, which stops at once.
+    """
+
+    def __init__(self, store, run_id: int, holder: str, every: float = HEARTBEAT_EVERY):
+        import threading
+
+        self.lost: BaseException | None = None
+        self._halt = threading.Event()
+        self._thread = threading.Thread(target=self._beat, args=(store, run_id, holder, every),
+                                        name="foldfarm-heartbeat", daemon=True)
+        self._thread.start()
+
+    def _beat(self, store, run_id: int, holder: str, every: float) -> None:
+        from foldfarm.store import LeaseLost, StoreError
+
+        while not self._halt.wait(every):
+            try:
+                store.heartbeat(run_id, holder)
+            except LeaseLost as exc:
+                self.lost = exc
+                return
+            except StoreError:  # a database hiccup: try again next beat, the TTL leaves room
+                continue
+
+    def check(self) -> None:
+        if self.lost is not None:
+            raise self.lost
+
+    def stop(self) -> None:
+        self._halt.set()
+        self._thread.join(timeout=5)
 
 
 def _stop(store, client, run_id: int, futures: dict, flush: Callable[[], None]) -> None:

@@ -134,3 +134,28 @@ def test_shipped_job_files_load():
     assert jobs
     for path in jobs:
         assert load_job(str(path)).shape
+
+
+def test_heartbeat_beats_and_reports_a_lost_lease():
+    import time
+
+    from foldfarm.run import Heartbeat
+    from foldfarm.store import LeaseLost
+
+    class FakeStore:
+        beats = 0
+
+        def heartbeat(self, run_id, holder):
+            self.beats += 1
+            if self.beats >= 3:
+                raise LeaseLost(f"run {run_id} is now driven by someone else")
+
+    fake = FakeStore()
+    heart = Heartbeat(fake, 7, "here:1", every=0.01)
+    deadline = time.monotonic() + 5
+    while heart.lost is None and time.monotonic() < deadline:
+        time.sleep(0.01)
+    heart.stop()
+    assert fake.beats == 3
+    with pytest.raises(LeaseLost, match="run 7"):
+        heart.check()
