@@ -160,7 +160,11 @@ def _drive(store, run_id: int, scheduler, workers, as_json: bool, quiet: bool, t
     if as_json:
         emit_json(summary.as_json())
     else:
-        typer.echo(summary.count if summary.count is not None else f"run {run_id}: {summary.state}")
+        typer.echo(summary.count if summary.count is not None else f"run {summary.run}: {summary.state}")
+    if summary.count is None:
+        typer.echo(f"foldfarm: run {summary.run} is not finished: {summary.failed:,} tasks failed "
+                   f"(foldfarm resume {summary.run} runs them again)", err=True)
+        raise typer.Exit(1)
         if not quiet:
             typer.echo(f"run {summary.run}: {summary.shape}, {summary.tasks:,} tasks done ({summary.splits:,} split), "
                        f"{summary.nodes:,} nodes, {summary.core_seconds:,.1f} core-s, {summary.seconds:,.1f} s",

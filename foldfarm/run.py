@@ -309,13 +309,14 @@ class Summary:
     core_seconds: float
     seconds: float
     checks: dict | None = None
+    failed: int = 0
 
     def as_json(self) -> dict:
         return {
             "run": self.run, "shape": self.shape, "state": self.state, "count": self.count,
             "tasks": self.tasks, "splits": self.splits, "nodes": self.nodes,
             "core_seconds": round(self.core_seconds, 3), "seconds": round(self.seconds, 3),
-            "checks": self.checks,
+            "checks": self.checks, "failed": self.failed,
         }
 
 
@@ -398,7 +399,7 @@ def drive(store, client, run_id: int, *, holder: str | None = None, take_over: b
     try:
         if needs_plan(run.state, sum(store.progress(run_id).tasks.values())):
             store_plan(store, run_id, tables_for(sides), settings)
-        store.reset_running(run_id)
+        store.reset_running(run_id, failed=True)
         if run.state != "running":
             store.set_run_state(run_id, "running")
         client.run(warm_worker)
@@ -573,7 +574,8 @@ def finish(store, run_id: int, started: float, client=None) -> Summary:
     return Summary(run=run_id, shape=run.shape, state=run.state,
                    count=run.total if run.total is not None else None, tasks=done,
                    splits=progress.tasks.get("split", 0), nodes=progress.nodes,
-                   core_seconds=progress.core_seconds, seconds=time.perf_counter() - started, checks=checks)
+                   core_seconds=progress.core_seconds, seconds=time.perf_counter() - started, checks=checks,
+                   failed=progress.tasks.get("failed", 0))
 
 
 # --------------------------------------------------------------------------

@@ -196,3 +196,46 @@ def test_local_cluster_default(tmp_path):
     status = foldfarm("status", "--store", url, "--json")
     runs = json.loads(status.stdout)["runs"]
     assert runs[0]["run"] == 1 and runs[0]["state"] in ("done", "verified") and runs[0]["pending"] == 0
+
+
+def _break_prefix(prefix: str) -> None:
+    """Worker-side fault: counting below ``prefix`` raises (restored by _mend)."""
+    import foldfarm.kernel as kernel
+    from foldfarm.prefix import parse_prefix
+
+    original = getattr(kernel, "_unbroken", kernel.count_below)
+    kernel._unbroken = original
+    bad = parse_prefix(prefix)
+
+    def broken(tables, steps=(), *args, **kwargs):
+        if tuple(steps) == bad:
+            raise RuntimeError("injected fault")
+        return original(tables, steps, *args, **kwargs)
+
+    kernel.count_below = broken
+
+
+def _mend() -> None:
+    import foldfarm.kernel as kernel
+
+    kernel.count_below = getattr(kernel, "_unbroken", kernel.count_below)
+
+
+def test_failed_task_is_reported_and_retried_on_resume(tmp_path):
+    from foldfarm import run as runner
+
+    with Store(f"sqlite:///{tmp_path / 'fail.sqlite'}") as store:
+        client, local = runner.connect(None, 2)
+        try:
+            run = runner.create(store, "3x5", runner.Settings(tasks=20, audit=0.0), 2)
+            victim = store.next_pending(run, 100)[5].prefix
+            client.run(_break_prefix, victim)
+            first = runner.drive(store, client, run)
+            assert first.count is None and first.failed == 1 and first.state == "running"
+            client.run(_mend)
+            second = runner.drive(store, client, run)
+        finally:
+            client.close()
+            local.close()
+        assert second.count == 201240 and second.failed == 0  # OEIS A001416, 3x5
+        assert_partition(store.url, run, 201240)

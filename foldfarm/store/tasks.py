@@ -123,11 +123,16 @@ class TaskStore(StoreBase):
                 changed += conn.execute(stmt).rowcount
         return changed
 
-    def reset_running(self, run_id: int) -> int:
-        """Return a run's ``running`` tasks to ``pending`` (on resume after a crash); how many."""
+    def reset_running(self, run_id: int, *, failed: bool = False) -> int:
+        """Return a run's ``running`` tasks (and ``failed`` ones if asked) to ``pending``; how many.
+
+        Used on resume: tasks a dead driver had out run again, and so do
+        tasks that failed last time (the cause may be gone).
+        """
+        states = ("running", "failed") if failed else ("running",)
         with self._write("resetting running tasks") as conn:
             self._run(conn, run_id)
-            stmt = update(Task).where(Task.run_id == run_id, Task.state == "running").values(state="pending")
+            stmt = update(Task).where(Task.run_id == run_id, Task.state.in_(states)).values(state="pending")
             return conn.execute(stmt).rowcount
 
     def mark_failed(self, task_id: int, error: str, *, now: datetime | None = None) -> bool:
