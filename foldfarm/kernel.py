@@ -160,6 +160,33 @@ def prepare(shape: Shape | str, order: str = "fast") -> Tables:
 # --------------------------------------------------------------------------
 
 @numba.njit(cache=True, nogil=True, inline="always")
+def _insert(above, below, l, m):
+    """Put leaf ``l`` into the cycle directly below leaf ``m``."""
+    above[l] = m
+    below[l] = below[m]
+    below[m] = l
+    above[below[l]] = l
+
+
+@numba.njit(cache=True, nogil=True, inline="always")
+def _remove(above, below, l):
+    """Take leaf ``l`` out of the cycle (its neighbours close ranks)."""
+    below[above[l]] = below[l]
+    above[below[l]] = above[l]
+
+
+@numba.njit(cache=True, nogil=True, inline="always")
+def _mirror_half(gap, g0, g):
+    """Keep only gap 2 in ``gap[g0:g]`` (leaf 3 below leaf 2, see Mirror); return the new end."""
+    keep = g0
+    for j in range(g0, g):
+        if gap[j] == 2:
+            gap[keep] = 2
+            keep += 1
+    return keep
+
+
+@numba.njit(cache=True, nogil=True, inline="always")
 def _gaps(table, l, below, mark, stamp, gap, g0, emit):
     """List the allowed gaps of leaf ``l`` at ``gap[g0:]``; return the end.
 
@@ -240,13 +267,7 @@ def _search(table, n, above, below, mark, gap, gapter, level, floor, budget, mir
             g = _gaps(table, l, below, mark, stamp, gap, g0, True)
             stamp += dims
             if mirror and l == 3:
-                # keep only "3 below 2" (see module doc, Mirror)
-                keep = g0
-                for j in range(g0, g):
-                    if gap[j] == 2:
-                        gap[keep] = 2
-                        keep += 1
-                g = keep
+                g = _mirror_half(gap, g0, g)
             if l == n:
                 leaves += g - g0
                 g = g0
@@ -254,14 +275,9 @@ def _search(table, n, above, below, mark, gap, gapter, level, floor, budget, mir
             l -= 1
             if l < floor:
                 return leaves, nodes, l, stamp
-            below[above[l]] = below[l]
-            above[below[l]] = above[l]
+            _remove(above, below, l)
         g -= 1
-        m = gap[g]
-        above[l] = m
-        below[l] = below[m]
-        below[m] = l
-        above[below[l]] = l
+        _insert(above, below, l, gap[g])
         gapter[l] = g
         l += 1
 
@@ -296,10 +312,7 @@ def _replay(table, n, above, below, mark, gap, gapter, steps, mirror):
             ok = False
         if not ok:
             return j + 1, stamp
-        above[l] = want
-        below[l] = below[want]
-        below[want] = l
-        above[below[l]] = l
+        _insert(above, below, l, want)
         gapter[l] = 0
     return 0, stamp
 
@@ -331,12 +344,7 @@ def _probe(table, n, above, below, mark, gap, level, mirror, stamp, probes, seed
             g = _gaps(table, l, below, mark, stamp, gap, 0, True)
             stamp += dims
             if mirror and l == 3:
-                keep = 0
-                for j in range(g):
-                    if gap[j] == 2:
-                        gap[keep] = 2
-                        keep += 1
-                g = keep
+                g = _mirror_half(gap, 0, g)
             if l == n:
                 leaves = weight * g
                 break
@@ -344,15 +352,10 @@ def _probe(table, n, above, below, mark, gap, level, mirror, stamp, probes, seed
                 break
             weight *= g
             nodes += weight
-            m = gap[np.random.randint(0, g)]
-            above[l] = m
-            below[l] = below[m]
-            below[m] = l
-            above[below[l]] = l
+            _insert(above, below, l, gap[np.random.randint(0, g)])
             l += 1
         for k in range(l - 1, level - 1, -1):
-            below[above[k]] = below[k]
-            above[below[k]] = above[k]
+            _remove(above, below, k)
         s_nodes += nodes
         s_nodes2 += nodes * nodes
         s_leaves += leaves
@@ -373,26 +376,18 @@ def _expand(table, n, above, below, mark, gap, gapter, steps, mirror, probes, se
     l = steps.shape[0] + 2
     g = _gaps(table, l, below, mark, stamp, gap, 0, True)
     stamp += dims
-    kids = np.empty(g, np.int64)
-    k = 0
-    for j in range(g):
-        if not (mirror and l == 3) or gap[j] == 2:
-            kids[k] = gap[j]
-            k += 1
-    kids = kids[:k]
+    if mirror and l == 3:
+        g = _mirror_half(gap, 0, g)
+    kids = gap[:g].copy()
+    k = g
     sizes = np.ones(k, np.float64)
     if probes > 0 and k > 1:  # an only child needs no estimate: it is the whole subtree
         for j in range(k):
-            m = kids[j]
-            above[l] = m
-            below[l] = below[m]
-            below[m] = l
-            above[below[l]] = l
+            _insert(above, below, l, kids[j])
             s_nodes, _, _, _, stamp = _probe(table, n, above, below, mark, gap, l + 1, mirror,
                                              stamp, probes, seed + j)
             sizes[j] = s_nodes / probes
-            below[above[l]] = below[l]
-            above[below[l]] = above[l]
+            _remove(above, below, l)
     return kids, sizes
 
 
