@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import functools
 import json
+import os
 import sys
 import time
 from typing import Callable
@@ -97,6 +98,23 @@ SchedulerOpt = typer.Option(None, "--scheduler", help="Address of an existing Da
 JsonOpt = typer.Option(False, "--json", help="Print one JSON object.")
 QuietOpt = typer.Option(False, "--quiet", help="No progress display.")
 TakeOverOpt = typer.Option(False, "--take-over", help="Drive the run even if another coordinator holds its lease.")
+TaskSecondsOpt = typer.Option(None, "--task-seconds", help="Budget of one task in seconds (default 120).")
+TaskNodesOpt = typer.Option(None, "--task-nodes", help="Budget of one task in search nodes (default: none).")
+
+
+def _budget(task_seconds: str | None, task_nodes: str | None) -> dict:
+    """Run settings from the budget options; one line and exit 2 for a bad value."""
+    values: dict = {}
+    if task_seconds is not None:
+        try:
+            values["task_seconds"] = float(task_seconds)
+        except ValueError:
+            values["task_seconds"] = -1.0
+        if not values["task_seconds"] >= 0:
+            fail(f"--task-seconds must be a number of seconds >= 0, not {task_seconds!r}")
+    if task_nodes is not None:
+        values["task_nodes"] = _whole(task_nodes, "--task-nodes")
+    return values
 
 
 def _open_store(url: str | None):
@@ -133,14 +151,22 @@ def _drive(store, run_id: int, scheduler, workers, as_json: bool, quiet: bool, t
         raise KeyboardInterrupt
 
     signal.signal(signal.SIGTERM, terminate)
-    client, cluster = runner.connect(scheduler, workers)
+    if new_shape is not None and scheduler is None:
+        # Plan while the local cluster starts: each takes about a second.
+        from concurrent.futures import ThreadPoolExecutor
+
+        with ThreadPoolExecutor(1) as starter:
+            starting = starter.submit(runner.connect, None, workers)
+            run_id = runner.create(store, new_shape, settings, workers or os.cpu_count() or 1)
+            client, cluster = starting.result()
+    else:
+        client, cluster = runner.connect(scheduler, workers)
+        if new_shape is not None:
+            run_id = runner.create(store, new_shape, settings, max(1, sum(client.nthreads().values())))
     try:
         if not (quiet or as_json):
             typer.echo(f"dashboard: {client.dashboard_link}", err=True)
-        if new_shape is not None:
-            threads = max(1, sum(client.nthreads().values()))
-            run_id = runner.create(store, new_shape, settings, threads)
-            if not (quiet or as_json):
+            if new_shape is not None:
                 typer.echo(f"run {run_id}: {new_shape} planned in {store.display_url}", err=True)
         show, live = _show_progress(quiet or as_json)
         try:
@@ -161,14 +187,14 @@ def _drive(store, run_id: int, scheduler, workers, as_json: bool, quiet: bool, t
         emit_json(summary.as_json())
     else:
         typer.echo(summary.count if summary.count is not None else f"run {summary.run}: {summary.state}")
-    if summary.count is None:
-        typer.echo(f"foldfarm: run {summary.run} is not finished: {summary.failed:,} tasks failed "
-                   f"(foldfarm resume {summary.run} runs them again)", err=True)
-        raise typer.Exit(1)
         if not quiet:
             typer.echo(f"run {summary.run}: {summary.shape}, {summary.tasks:,} tasks done ({summary.splits:,} split), "
                        f"{summary.nodes:,} nodes, {summary.core_seconds:,.1f} core-s, {summary.seconds:,.1f} s",
                        err=True)
+    if summary.count is None:
+        typer.echo(f"foldfarm: run {summary.run} is not finished: {summary.failed:,} tasks failed "
+                   f"(foldfarm resume {summary.run} runs them again)", err=True)
+        raise typer.Exit(1)
 
 
 @app.command("run", context_settings={"ignore_unknown_options": True})
@@ -178,9 +204,9 @@ def run_cmd(
     store: str = StoreOpt,
     workers: int = WorkersOpt,
     scheduler: str = SchedulerOpt,
-    task_seconds: float = typer.Option(None, "--task-seconds", help="Budget of one task in seconds (default 120)."),
-    task_nodes: int = typer.Option(None, "--task-nodes", help="Budget of one task in search nodes (default: none)."),
-    tasks: int = typer.Option(None, "--tasks", help="Tasks to plan (default: 64 per worker thread, at least 256)."),
+    task_seconds: str = TaskSecondsOpt,
+    task_nodes: str = TaskNodesOpt,
+    tasks: str = typer.Option(None, "--tasks", help="Tasks to plan (default: 64 per worker thread, at least 256)."),
     given_order: bool = typer.Option(False, "--given-order", help="Search the sides in the order given."),
     as_json: bool = JsonOpt,
     quiet: bool = QuietOpt,
@@ -201,11 +227,9 @@ def run_cmd(
         workers = workers or job.workers
     else:
         shape_text = parse_shape(target).text
-    for key, value in (("task_seconds", task_seconds), ("task_nodes", task_nodes), ("tasks", tasks)):
-        if value is not None:
-            if value < 0:
-                fail(f"--{key.replace('_', '-')} must not be negative")
-            values[key] = value
+    values.update(_budget(task_seconds, task_nodes))
+    if tasks is not None:
+        values["tasks"] = _whole(tasks, "--tasks", 1)
     if given_order:
         values["order"] = "given"
     settings = Settings.from_dict(values)
@@ -246,10 +270,14 @@ def resume_cmd(
 @app.command("status")
 @user_errors
 def status_cmd(
+    run: str = typer.Argument(None, help="Run id: show that run in detail (default: list the runs)."),
     store: str = StoreOpt,
     as_json: bool = JsonOpt,
 ) -> None:
-    """List the runs in a store: id, shape, state, tasks done and pending, foldings counted."""
+    """List the runs in a store, or show one RUN: state, progress, total so far, checks."""
+    if run is not None:
+        _run_status(_run_id(run), store, as_json)
+        return
     opened = _open_store(store)
     try:
         runs = opened.list_runs()
@@ -268,6 +296,231 @@ def status_cmd(
     for r in runs:
         typer.echo(f"{r.id:>5}  {r.shape:<10} {r.state:<9} {r.done:>9,} {r.pending + r.running:>9,} {r.split:>7,} "
                    f"{r.failed:>6,}  {r.total if r.total is not None else r.counted}")
+
+
+# ---- checks and queries -----------------------------------------------------------------
+
+def _whole(text: str | None, option: str, minimum: int = 0) -> int | None:
+    """``text`` as a whole number >= ``minimum`` (None stays None); one line and exit 2 otherwise."""
+    if text is None:
+        return None
+    value = text.strip()
+    if not value.lstrip("-").isdigit() or int(value) < minimum:
+        fail(f"{option} must be a whole number of at least {minimum}, not {text!r}")
+    return int(value)
+
+
+def _write_file(path: str, write: Callable) -> None:
+    """Write a file through ``write(handle)``: all of it or, on any error, nothing (via a temporary file)."""
+    import os
+
+    partial = f"{path}.partial"
+    try:
+        with open(partial, "w", newline="", encoding="utf-8") as handle:
+            write(handle)
+        os.replace(partial, path)
+    except OSError as exc:
+        try:
+            os.unlink(partial)
+        except OSError:
+            pass
+        fail(f"cannot write {path}: {exc.strerror or exc}")
+
+
+def _run_status(run_id: int, store: str | None, as_json: bool) -> None:
+    from foldfarm import report
+
+    opened = _open_store(store)
+    try:
+        run = opened.get_run(run_id)
+        detail = report.run_detail(run, opened.progress(run_id), opened.audit_summary(run_id), opened.lease(run_id))
+    finally:
+        opened.close()
+    if as_json:
+        emit_json(detail)
+    else:
+        typer.echo("\n".join(report.detail_lines(detail)))
+
+
+@app.command("verify")
+@user_errors
+def verify_cmd(
+    run: str = typer.Argument(..., help="Run id (see foldfarm status)."),
+    store: str = StoreOpt,
+    workers: int = WorkersOpt,
+    scheduler: str = SchedulerOpt,
+    audit: str = typer.Option(None, "--audit", help="Fraction of done tasks to count again on another worker "
+                              "(default: the run's setting, 0.01; 0: no audit, no cluster)."),
+    transpose: bool = typer.Option(False, "--transpose", help="Also count the map with its sides in another order."),
+    seed: str = typer.Option(None, "--seed", help="Seed that picks the audited tasks (default: a fresh one)."),
+    as_json: bool = JsonOpt,
+    quiet: bool = QuietOpt,
+) -> None:
+    """Check RUN's total (completeness, divisibility, audit, published values, certificate); exit 1 if a check fails."""
+    import secrets
+
+    from foldfarm import check, report
+    from foldfarm import run as runner
+
+    run_id = _run_id(run)
+    chosen_seed = _whole(seed, "--seed")
+    chosen_seed = secrets.randbelow(2**31) if chosen_seed is None else chosen_seed
+    opened = _open_store(store)
+    try:
+        info = opened.get_run(run_id)
+        fraction = check.parse_fraction(info.settings.get("audit", check.DEFAULT_AUDIT) if audit is None else audit)
+        client = cluster = None
+        if fraction > 0 or transpose:
+            client, cluster = runner.connect(scheduler, workers)
+        try:
+            checks = check.verify_run(opened, run_id, client=client, audit_fraction=fraction, transpose=transpose,
+                                      seed=chosen_seed)
+        finally:
+            if client is not None:
+                client.close()
+            if cluster is not None:
+                cluster.close()
+        info = opened.get_run(run_id)
+    finally:
+        opened.close()
+    ok = check.passed(checks)
+    if as_json:
+        emit_json({"run": run_id, "shape": info.shape, "state": info.state, "passed": ok,
+                   "total": checks["total"]["value"], "certificate": checks["certificate"]["digest"],
+                   "checks": checks})
+    else:
+        typer.echo(f"run {run_id}: {info.shape}, total {checks['total']['value']}")
+        if not quiet:
+            typer.echo("\n".join(report.check_lines(checks)))
+        typer.echo(f"certificate {checks['certificate']['digest']}")
+        if info.state not in check.FINISHED:
+            typer.echo(f"run {run_id}: {info.state}, not finished: nothing stored")
+        else:
+            failed = [name for name, c in checks.items() if c["ok"] is False]
+            typer.echo(f"run {run_id}: {info.state}" + (f" ({', '.join(failed)} failed)" if failed else ""))
+    if not ok:
+        raise typer.Exit(1)
+
+
+@app.command("tasks")
+@user_errors
+def tasks_cmd(
+    run: str = typer.Argument(..., help="Run id (see foldfarm status)."),
+    store: str = StoreOpt,
+    state: list[str] = typer.Option(None, "--state", help="Only tasks in this state (repeatable): pending, "
+                                    "running, done, split, failed."),
+    sort: str = typer.Option("id", "--sort", help="id, time (seconds spent, longest first), count (largest "
+                             "first) or finished (latest first)."),
+    limit: str = typer.Option("20", "--limit", help="Show at most this many tasks (0: all)."),
+    as_json: bool = JsonOpt,
+) -> None:
+    """List RUN's tasks, filtered by state and sorted by id, time, count or finishing time."""
+    from foldfarm import report
+
+    run_id = _run_id(run)
+    most = _whole(limit, "--limit")
+    opened = _open_store(store)
+    try:
+        tasks = opened.tasks(run_id, state or (), sort, most or None)
+    finally:
+        opened.close()
+    if as_json:
+        emit_json({"run": run_id, "tasks": [report.task_dict(t) for t in tasks]})
+    else:
+        typer.echo("\n".join(report.task_lines(tasks)))
+
+
+@app.command("export")
+@user_errors
+def export_cmd(
+    run: str = typer.Argument(..., help="Run id (see foldfarm status)."),
+    store: str = StoreOpt,
+    fmt: str = typer.Option("json", "--format", help="json (the run, its audits and tasks) or csv (one table)."),
+    as_json: bool = typer.Option(False, "--json", help="Same as --format json."),
+    table: str = typer.Option("tasks", "--table", help="CSV table: tasks, run or audits."),
+    output: str = typer.Option(None, "--output", "-o", help="Write to this file (default: standard output)."),
+) -> None:
+    """Export RUN and its tasks as JSON or CSV, with exact integers."""
+    from foldfarm import report
+
+    if fmt not in ("json", "csv"):
+        fail(f"--format must be json or csv, not {fmt!r}")
+    if as_json and fmt == "csv":
+        fail("--json and --format csv contradict each other; give one")
+    if table not in ("tasks", "run", "audits"):
+        fail(f"--table must be tasks, run or audits, not {table!r}")
+    run_id = _run_id(run)
+    opened = _open_store(store)
+    try:
+        info = opened.get_run(run_id)
+        detail = report.run_detail(info, opened.progress(run_id), opened.audit_summary(run_id))
+
+        def write(handle) -> None:
+            if fmt == "json":
+                report.write_json(handle, detail, opened.audits(run_id), opened.iter_tasks(run_id))
+            elif table == "run":
+                report.write_csv(handle, report.RUN_COLUMNS, [report.run_row(detail)])
+            elif table == "audits":
+                rows = ({**vars(a), "audited_at": report.when(a.audited_at)} for a in opened.audits(run_id))
+                report.write_csv(handle, report.AUDIT_COLUMNS, rows)
+            else:
+                report.write_csv(handle, report.TASK_COLUMNS, (report.task_dict(t) for t in opened.iter_tasks(run_id)))
+
+        if output is None:
+            write(sys.stdout)
+        else:
+            _write_file(output, write)
+    finally:
+        opened.close()
+
+
+@app.command("sweep")
+@user_errors
+def sweep_cmd(
+    family: str = typer.Argument(..., help="Family of shapes: a shape with N for the varying side (3xN, NxN) "
+                                 "or S^N for N sides of S (2^N)."),
+    first: str = typer.Option("1", "--from", help="First index N."),
+    last: str = typer.Option(..., "--to", help="Last index N."),
+    store: str = StoreOpt,
+    workers: int = WorkersOpt,
+    scheduler: str = SchedulerOpt,
+    task_seconds: str = TaskSecondsOpt,
+    task_nodes: str = TaskNodesOpt,
+    fresh: bool = typer.Option(False, "--fresh", help="Count every member anew, even if the store has a run of it."),
+    table: str = typer.Option(None, "--table", help="Also write 'index value' lines to this file."),
+    as_json: bool = JsonOpt,
+    quiet: bool = QuietOpt,
+) -> None:
+    """Count a family of shapes as runs in one store; tabulate values, checks and published values."""
+    from foldfarm import run as runner
+    from foldfarm import sweep
+
+    shapes = sweep.members(sweep.parse_family(family), _whole(first, "--from", 1), _whole(last, "--to", 1))
+    settings = runner.Settings.from_dict(_budget(task_seconds, task_nodes))
+
+    def show(row) -> None:
+        if not (quiet or as_json):
+            typer.echo(f"N={row.index} {row.shape}: {row.count} (run {row.run}, {row.state})", err=True)
+
+    opened = _open_store(store)
+    try:
+        client, cluster = runner.connect(scheduler, workers)
+        try:
+            rows = sweep.sweep(opened, client, shapes, settings, fresh=fresh, on_row=show)
+        finally:
+            client.close()
+            if cluster is not None:
+                cluster.close()
+    finally:
+        opened.close()
+    if table is not None:
+        _write_file(table, lambda handle: handle.write("".join(f"{line}\n" for line in sweep.sequence_lines(rows))))
+    if as_json:
+        emit_json({"family": family, "members": [r.as_json() for r in rows]})
+    else:
+        typer.echo("\n".join(sweep.table_lines(rows)))
+    if any(r.failed for r in rows):
+        raise typer.Exit(1)
 
 
 def main() -> None:

@@ -112,7 +112,17 @@ from foldfarm.store.core import RunInfo, Store
 from foldfarm.store.errors import LeaseHeld, LeaseLost, ResultConflict, SchemaVersionError, StoreError
 from foldfarm.store.leases import LeaseInfo
 from foldfarm.store.models import SCHEMA_VERSION
-from foldfarm.store.queries import BranchTotal, Progress, RunSummary, TaskStat
+from foldfarm.store.queries import (
+    TASK_ORDERS,
+    AuditRecord,
+    BranchTotal,
+    CheckRow,
+    IdGap,
+    Progress,
+    RunSummary,
+    TaskRecord,
+    TaskStat,
+)
 from foldfarm.store.rules import Recorded
 from foldfarm.store.tasks import BatchReport, TaskResult, TaskRow
 from foldfarm.store.urls import ENV_VAR, redact, resolve_store_url
@@ -120,8 +130,12 @@ from foldfarm.store.urls import ENV_VAR, redact, resolve_store_url
 __all__ = [
     "ENV_VAR",
     "SCHEMA_VERSION",
+    "TASK_ORDERS",
+    "AuditRecord",
     "BatchReport",
     "BranchTotal",
+    "CheckRow",
+    "IdGap",
     "LeaseHeld",
     "LeaseInfo",
     "LeaseLost",
@@ -133,6 +147,7 @@ __all__ = [
     "SchemaVersionError",
     "Store",
     "StoreError",
+    "TaskRecord",
     "TaskResult",
     "TaskRow",
     "TaskStat",

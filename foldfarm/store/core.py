@@ -7,6 +7,7 @@ the invariant these methods keep.
 from __future__ import annotations
 
 import logging
+from collections.abc import Iterable, Iterator
 from dataclasses import dataclass
 from datetime import datetime
 from typing import Any
@@ -19,7 +20,15 @@ from foldfarm.store.base import short_text, worker_address
 from foldfarm.store.errors import StoreError
 from foldfarm.store.leases import LeaseInfo
 from foldfarm.store.models import Audit, Run, Task, check_json
-from foldfarm.store.rules import OPEN_STATES, check_int64, check_run_transition, check_seconds, check_total, utc
+from foldfarm.store.rules import (
+    OPEN_STATES,
+    TASK_STATES,
+    check_int64,
+    check_run_transition,
+    check_seconds,
+    check_total,
+    utc,
+)
 from foldfarm.store.tasks import TaskStore
 
 log = logging.getLogger("foldfarm.store")
@@ -266,3 +275,46 @@ class Store(TaskStore):
         with self._read("totalling branches") as conn:
             self._run(conn, run_id)
             return queries.branch_totals(conn, run_id)
+
+    def tasks(
+        self, run_id: int, states: Iterable[str] = (), order: str = "id", limit: int | None = None
+    ) -> list[queries.TaskRecord]:
+        """A run's tasks in ``states`` (all when empty), sorted by ``order`` (one of
+        :data:`queries.TASK_ORDERS`; largest first except ``id``), at most ``limit``."""
+        states = tuple(states)
+        for state in states:
+            if state not in TASK_STATES:
+                raise StoreError(f"{state!r} is not a task state; use one of {', '.join(TASK_STATES)}")
+        if order not in queries.TASK_ORDERS:
+            raise StoreError(f"cannot sort tasks by {order!r}; use one of {', '.join(queries.TASK_ORDERS)}")
+        if limit is not None and limit < 0:
+            raise StoreError(f"a task limit must be 0 or more, got {limit}")
+        with self._read("listing tasks") as conn:
+            self._run(conn, run_id)
+            return queries.task_listing(conn, run_id, states, order, limit)
+
+    def iter_tasks(self, run_id: int) -> Iterator[queries.TaskRecord]:
+        """Stream every task of a run with all its columns, in id order (for exports)."""
+        self.get_run(run_id)  # a missing run fails now, not at the first next()
+        return (queries.TaskRecord(*row) for row in self._stream(queries.task_records(run_id)))
+
+    def check_rows(self, run_id: int) -> Iterator[queries.CheckRow]:
+        """Stream ``(id, prefix, state, count, parent_id, worker)`` of a run's tasks in id order."""
+        self.get_run(run_id)
+        return (queries.CheckRow(*row) for row in self._stream(queries.check_rows(run_id)))
+
+    def audits(self, run_id: int) -> list[queries.AuditRecord]:
+        """Every audit of a run's tasks, oldest first, beside the recorded counts."""
+        with self._read("reading audits") as conn:
+            self._run(conn, run_id)
+            return queries.audit_records(conn, run_id)
+
+    def runs_of_shape(self, shape: str) -> list[tuple[int, str]]:
+        """``(id, state)`` of every run of exactly ``shape`` (canonical text), oldest first."""
+        with self._read("finding runs") as conn:
+            return queries.runs_of_shape(conn, shape)
+
+    def task_id_gaps(self, first: int, last: int) -> list[queries.IdGap]:
+        """Ranges of task ids in ``first..last`` held by no task of any run (deleted tasks)."""
+        with self._read("looking for deleted tasks") as conn:
+            return queries.id_gaps(conn, first, last)

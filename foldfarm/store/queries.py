@@ -8,11 +8,12 @@ part stays far below 2**63 for up to 2**31 tasks) and recombined in Python.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from datetime import datetime
 from typing import Literal
 
 from sqlalchemy import Connection, case, func, select
 
-from foldfarm.store.models import Run, Task
+from foldfarm.store.models import Audit, Run, Task
 from foldfarm.store.rules import COUNTED_STATES, OPEN_STATES, TASK_STATES
 
 _LOW = 2**32
@@ -151,3 +152,145 @@ def branch_totals(conn: Connection, run_id: int) -> list[BranchTotal]:
     )
     rows = [BranchTotal(b, n, int(o or 0), _join_sum(h, lo)) for b, n, o, h, lo in conn.execute(stmt)]
     return sorted(rows, key=lambda r: (r.branch is not None, r.branch or 0))
+
+
+# -- task listings (status, tasks, export, checks) ---------------------------------------
+
+
+@dataclass(frozen=True)
+class TaskRecord:
+    """Every stored column of a task; ``count`` is exact (partial for split tasks), times naive UTC."""
+
+    id: int
+    prefix: str
+    state: str
+    count: int | None
+    nodes: int | None
+    seconds: float | None
+    attempts: int
+    worker: str | None
+    parent_id: int | None
+    depth: int
+    error: str | None
+    created_at: datetime
+    started_at: datetime | None
+    finished_at: datetime | None
+
+
+@dataclass(frozen=True)
+class CheckRow:
+    """What the checks read of a task (see :mod:`foldfarm.check`)."""
+
+    id: int
+    prefix: str
+    state: str
+    count: int | None
+    parent_id: int | None
+    worker: str | None
+
+
+@dataclass(frozen=True)
+class AuditRecord:
+    """A second computation of a done task, beside the task's recorded count."""
+
+    id: int
+    task_id: int
+    prefix: str
+    recorded: int
+    count: int
+    matched: bool
+    nodes: int | None
+    seconds: float | None
+    worker: str | None
+    audited_at: datetime
+
+
+@dataclass(frozen=True)
+class IdGap:
+    """Task ids ``first..last`` that no task of the store has, and the runs of the tasks on either side."""
+
+    first: int
+    last: int
+    run_before: int | None
+    run_after: int | None
+
+
+#: Sort orders of :func:`task_listing`: ``time`` is seconds spent, longest first.
+TASK_ORDERS = ("id", "time", "count", "finished")
+
+_RECORD_COLUMNS = [getattr(Task, name) for name in TaskRecord.__dataclass_fields__]
+
+
+def task_records(run_id: int):
+    """SELECT of every column of a run's tasks, in id order (stream it)."""
+    return select(*_RECORD_COLUMNS).where(Task.run_id == run_id).order_by(Task.id)
+
+
+def check_rows(run_id: int):
+    """SELECT of :class:`CheckRow` columns of a run's tasks, in id order (stream it)."""
+    columns = [getattr(Task, name) for name in CheckRow.__dataclass_fields__]
+    return select(*columns).where(Task.run_id == run_id).order_by(Task.id)
+
+
+def task_listing(
+    conn: Connection, run_id: int, states: tuple[str, ...] = (), order: str = "id", limit: int | None = None
+) -> list[TaskRecord]:
+    """A run's tasks in ``states`` (all when empty), sorted by ``order``, at most ``limit`` of them.
+
+    ``time``, ``count`` and ``finished`` put the largest (latest) first and
+    tasks without the value last; ties go to the lower id.
+    """
+    keys = {
+        "id": [Task.id],
+        "time": [Task.seconds.desc().nulls_last(), Task.id],
+        "count": [Task.count.desc().nulls_last(), Task.id],
+        "finished": [Task.finished_at.desc().nulls_last(), Task.id],
+    }[order]
+    stmt = select(*_RECORD_COLUMNS).where(Task.run_id == run_id)
+    if states:
+        stmt = stmt.where(Task.state.in_(states))
+    stmt = stmt.order_by(*keys)
+    if limit is not None:
+        stmt = stmt.limit(limit)
+    return [TaskRecord(*row) for row in conn.execute(stmt)]
+
+
+def audit_records(conn: Connection, run_id: int) -> list[AuditRecord]:
+    """Every audit of a run's tasks, oldest first."""
+    stmt = (
+        select(Audit.id, Audit.task_id, Task.prefix, Task.count, Audit.count, Audit.matched, Audit.nodes,
+               Audit.seconds, Audit.worker, Audit.audited_at)
+        .join(Task, Task.id == Audit.task_id)
+        .where(Task.run_id == run_id)
+        .order_by(Audit.id)
+    )
+    return [AuditRecord(*row) for row in conn.execute(stmt)]
+
+
+def runs_of_shape(conn: Connection, shape: str) -> list[tuple[int, str]]:
+    """``(id, state)`` of the runs of exactly ``shape`` (canonical text), oldest first."""
+    return [tuple(row) for row in conn.execute(select(Run.id, Run.state).where(Run.shape == shape).order_by(Run.id))]
+
+
+def id_gaps(conn: Connection, first: int, last: int) -> list[IdGap]:
+    """Ranges of ids in ``first..last`` that no task has (any run).
+
+    Ids are handed out consecutively and never freed, so a gap is a deleted
+    task.  One COUNT answers the usual case (no gap); only then are the ids
+    of the range read.
+    """
+    if last < first:
+        return []
+    present = conn.execute(select(func.count(Task.id)).where(Task.id.between(first, last))).scalar_one()
+    if present == last - first + 1:
+        return []
+    stmt = select(Task.id, Task.run_id).where(Task.id.between(first - 1, last + 1)).order_by(Task.id)
+    gaps = []
+    previous: tuple[int, int | None] = (first - 1, None)
+    for task_id, run_id in conn.execute(stmt):
+        if task_id > previous[0] + 1:
+            gaps.append(IdGap(previous[0] + 1, task_id - 1, previous[1], run_id))
+        previous = (task_id, run_id)
+    if previous[0] < last:
+        gaps.append(IdGap(previous[0] + 1, last, previous[1], None))
+    return gaps

@@ -1,0 +1,711 @@
+"""The aggregator: a run's exact total and the evidence that it is right.
+
+:func:`verify_run` reads a run's tasks from the store in one streamed pass,
+runs the checks below, stores their outcome with the run (state
+``verified`` when none failed, ``suspect`` otherwise) and returns them as
+a JSON-able dict: check name -> ``{"ok": True | False | None, "detail":
+text, ...}``, where ``None`` means "not applicable" or "skipped" (never
+"passed").  Every decision is a plain function of plain data, tested
+without a database or a cluster; :func:`verify_run` is the thin layer that
+feeds them.
+
+``total``
+    Σ count of done tasks + Σ partial count of split tasks, in exact
+    integers, equals the total stored when the run finished.
+``completeness``
+    No task is pending, running or failed; the tasks without a parent (the
+    plan) partition the search tree; every split task's children are
+    exactly the remainder the kernel defines for it (see
+    :func:`split_problems`); no two done tasks overlap; and no task id in
+    the run's range is missing from the store (ids are handed out
+    consecutively and never freed, so a gap is a deleted task).
+``divisibility``
+    Every task count, and so the total, is a multiple of
+    :func:`symmetry_factor`: the number of cells (the rotations of a
+    folded stack) times 2 for three cells or more (turning the stack
+    over).  A flipped bit or an edited count rarely keeps that, and the
+    check names the task.
+``audit``
+    A random sample of done tasks (``--audit FRACTION`` of them, default
+    the run's ``audit`` setting, 1 %, at least one) is counted again on a
+    worker other than the one that recorded it; on a mismatch a third
+    count, on yet another worker or else in this process, says which
+    worker disagreed.  Any mismatch makes the run suspect.
+``published``
+    The total against every published value for the shape
+    (:mod:`foldfarm.published`), naming the source.
+``transpose``
+    The same map counted with its sides in another order: a different
+    search tree, planned and split independently, must give the same total.
+``certificate``
+    ``sha256:`` + SHA-256 of the text ``foldfarm certificate 1 <side
+    order>\\n`` followed by one line ``<prefix> <state> <count>\\n`` per done
+    or split task, sorted by prefix as a tuple of numbers.  Done counts
+    and split partial counts together make the total, so the digest
+    certifies it.  Two stores holding the same run give the same digest,
+    and so does the same plan counted again with the same node budget
+    (budgets in seconds split at other places: same total, other digest).  The first
+    digest is stored with the run and never replaced: a later
+    verification that computes another one fails.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import itertools
+import math
+import random
+from collections import Counter
+from collections.abc import Callable, Iterable
+from dataclasses import dataclass, field
+
+from foldfarm.errors import UserError
+from foldfarm.prefix import PrefixError, Steps, first_overlap, parse_prefix, prefix_text
+
+#: Check names, in the order they are reported.
+CHECKS = ("total", "completeness", "divisibility", "audit", "published", "transpose", "certificate")
+#: Audit fraction of a run whose settings name none.
+DEFAULT_AUDIT = 0.01
+#: Run states in which the total is final and the outcome can be stored.
+FINISHED = ("done", "verified", "suspect")
+#: Problems quoted in a detail line; the rest are counted.
+SHOWN = 3
+
+#: Children of each node of a batch (the next steps, in the kernel's order); None for a node that is
+#: not in the tree or has no nodes below it (its children are the foldings counted in bulk).
+Kids = Callable[[list[Steps]], list[list[int] | None]]
+
+
+def outcome(ok: bool | None, detail: str, **extra) -> dict:
+    """One check's result: ``ok`` (None: not applicable or skipped), one-line ``detail``, extra fields."""
+    return {"ok": ok, "detail": detail, **extra}
+
+
+def passed(checks: dict) -> bool:
+    """Whether no check failed (skipped and not-applicable checks do not fail a run)."""
+    return all(c.get("ok") is not False for c in checks.values())
+
+
+def _listed(problems: list[str], more: int = 0) -> str:
+    """The first :data:`SHOWN` problems, and how many more there are (``more`` beyond the list)."""
+    rest = len(problems) - SHOWN + more if len(problems) > SHOWN else more
+    return "; ".join(problems[:SHOWN]) + (f"; and {rest} more problem(s)" if rest > 0 else "")
+
+
+# --------------------------------------------------------------------------
+# One pass over the task rows
+# --------------------------------------------------------------------------
+
+@dataclass
+class Scan:
+    """What one pass over a run's tasks (in id order) gathers for the checks.
+
+    ``entries`` holds ``(steps, state, count)`` of every done and split
+    task; ``tops`` the steps of tasks without a parent; ``children`` the
+    steps of each parent id's children; ``sample`` the rows of the done
+    tasks at the requested positions (0-based, in id order).  Of the
+    tasks with a malformed prefix or a count off the factor, the first
+    :data:`SHOWN` are kept and the rest counted.
+    """
+
+    factor: int
+    states: Counter = field(default_factory=Counter)
+    done_sum: int = 0
+    split_sum: int = 0
+    entries: list[tuple[Steps, str, int]] = field(default_factory=list)
+    tops: list[Steps] = field(default_factory=list)
+    children: dict[int, list[Steps]] = field(default_factory=dict)
+    splits: dict[int, Steps] = field(default_factory=dict)
+    malformed: list[str] = field(default_factory=list)
+    malformed_more: int = 0
+    not_multiple: list[tuple[str, int]] = field(default_factory=list)
+    not_multiple_more: int = 0
+    sample: list = field(default_factory=list)
+    first_id: int | None = None
+    last_id: int | None = None
+
+    @property
+    def total(self) -> int:
+        """Foldings counted: done counts plus split partial counts."""
+        return self.done_sum + self.split_sum
+
+
+def scan_tasks(rows: Iterable, factor: int, sample_positions: Iterable[int] = ()) -> Scan:
+    """Gather a :class:`Scan` from task rows with ``id, prefix, state, count, parent_id, worker``.
+
+    >>> from foldfarm.store import CheckRow
+    >>> rows = [CheckRow(1, "/1", "done", 24, None, "w1"), CheckRow(2, "/2", "split", 12, None, None),
+    ...         CheckRow(3, "/2/1", "done", 36, 2, "w2")]
+    >>> s = scan_tasks(rows, factor=12, sample_positions=[1])
+    >>> s.total, s.tops, s.children, [r.id for r in s.sample]
+    (72, [(1,), (2,)], {2: [(2, 1)]}, [3])
+    """
+    scan = Scan(factor)
+    wanted = sorted(set(sample_positions), reverse=True)
+    done_seen = 0
+    for row in rows:
+        scan.first_id = row.id if scan.first_id is None else scan.first_id
+        scan.last_id = row.id
+        scan.states[row.state] += 1
+        try:
+            steps = parse_prefix(row.prefix)
+        except PrefixError:
+            if len(scan.malformed) < SHOWN:
+                scan.malformed.append(f"task {row.id} has the malformed prefix {row.prefix[:40]!r}")
+            else:
+                scan.malformed_more += 1
+            continue
+        if row.parent_id is None:
+            scan.tops.append(steps)
+        else:
+            scan.children.setdefault(row.parent_id, []).append(steps)
+        if row.state not in ("done", "split"):
+            continue
+        count = int(row.count)
+        scan.entries.append((steps, row.state, count))
+        if count % factor and len(scan.not_multiple) < SHOWN:
+            scan.not_multiple.append((row.prefix, count))
+        elif count % factor:
+            scan.not_multiple_more += 1
+        if row.state == "split":
+            scan.split_sum += count
+            scan.splits[row.id] = steps
+        else:
+            scan.done_sum += count
+            if wanted and wanted[-1] == done_seen:
+                wanted.pop()
+                scan.sample.append(row)
+            done_seen += 1
+    return scan
+
+
+# --------------------------------------------------------------------------
+# Total, divisibility, published values, certificate
+# --------------------------------------------------------------------------
+
+def total_check(scan: Scan, stored: int | None, finished: bool) -> dict:
+    """The exact sum against the total stored when the run finished."""
+    summed = (f"{scan.total} = {scan.done_sum} in {scan.states['done']} done task(s) "
+              f"+ {scan.split_sum} in {scan.states['split']} split task(s)")
+    if not finished:
+        return outcome(None, f"run not finished; counted so far: {summed}", value=scan.total)
+    if stored != scan.total:
+        return outcome(False, f"the stored total {stored} differs from the sum of the tasks, {summed}",
+                       value=scan.total, stored=stored)
+    return outcome(True, summed, value=scan.total)
+
+
+def symmetry_factor(cells: int) -> int:
+    """The factor every count of a map of ``cells`` cells has, by symmetry.
+
+    ``cells`` rotations of a folded stack (top leaf moved to the bottom) are
+    distinct foldings, and for 3 cells or more turning the stack over pairs
+    the foldings with leaf 1 on top without a fixed point (proofs in
+    :mod:`foldfarm.kernel`, which counts one leaf per ``factor`` foldings).
+
+    >>> [symmetry_factor(n) for n in (1, 2, 3, 24)]
+    [1, 2, 6, 48]
+    """
+    return cells * (2 if cells >= 3 else 1)
+
+
+def divisibility_check(scan: Scan, cells: int) -> dict:
+    """The total and every task count are multiples of :func:`symmetry_factor`."""
+    factor = symmetry_factor(cells)
+    why = f"{cells} rotation{'s' if cells > 1 else ''}" + (" x 2 sides" if cells >= 3 else "")
+    bad = [f"task {p} counts {c} = {factor} x {c // factor} + {c % factor}" for p, c in scan.not_multiple]
+    if scan.total % factor:
+        bad.insert(0, f"the total {scan.total} leaves {scan.total % factor} over")
+    if bad:
+        return outcome(False, f"not divisible by {factor} ({why}): {_listed(bad, scan.not_multiple_more)}",
+                       factor=factor)
+    return outcome(True, f"{scan.total} = {factor} x {scan.total // factor}; every task count is a multiple "
+                         f"of {factor} ({why})", factor=factor)
+
+
+def published_check(shape: str, total: int, finished: bool) -> dict:
+    """The total against every published value for ``shape``, naming each source.
+
+    >>> published_check("3x4", 15552, True)["detail"]
+    '15552 equals the published value (OEIS A001416)'
+    >>> published_check("3x4", 15553, True)["ok"]
+    False
+    """
+    from foldfarm.published import published
+
+    values = published(shape)
+    sources = [{"source": v.source, "count": v.count} for v in values]
+    if not values:
+        return outcome(None, f"no published value for {shape} in foldfarm's table", sources=sources)
+    if not finished:
+        named = ", ".join(f"{v.count} ({v.source})" for v in values)
+        return outcome(None, f"run not finished; published: {named}", sources=sources)
+    wrong = [v for v in values if v.count != total]
+    if wrong:
+        named = "; ".join(f"{v.count} published in {v.source}" for v in wrong)
+        return outcome(False, f"{total} differs from {named}", sources=sources)
+    named = ", ".join(v.source for v in values)
+    return outcome(True, f"{total} equals the published value ({named})", sources=sources)
+
+
+def certificate(side_order: str, entries: Iterable[tuple[Steps, str, int]]) -> str:
+    """Digest of a run's done and split tasks (see the module docstring for the exact text hashed).
+
+    >>> a = certificate("4x3", [((2,), "done", 24), ((1,), "split", 12)])
+    >>> a == certificate("4x3", [((1,), "split", 12), ((2,), "done", 24)]), a.startswith("sha256:")
+    (True, True)
+    >>> a == certificate("4x3", [((2,), "done", 36), ((1,), "split", 12)])
+    False
+    """
+    digest = hashlib.sha256(f"foldfarm certificate 1 {side_order}\n".encode())
+    for steps, state, count in sorted(entries):
+        digest.update(f"{prefix_text(steps)} {state} {count}\n".encode())
+    return "sha256:" + digest.hexdigest()
+
+
+def certificate_check(digest: str, stored: str | None) -> dict:
+    """A newly computed digest against the one stored with the run (if any)."""
+    if stored is None:
+        return outcome(True, f"{digest} (first verification: stored with the run)", digest=digest)
+    if stored != digest:
+        return outcome(False, f"the tasks now give {digest}, but {stored} was stored when the run was first "
+                              "verified: its tasks changed since", digest=digest, stored=stored)
+    return outcome(True, f"{digest} (same as stored)", digest=digest)
+
+
+# --------------------------------------------------------------------------
+# Completeness
+# --------------------------------------------------------------------------
+
+def cover_problems(prefixes: list[Steps], kids: Kids, cells: int) -> list[str]:
+    """Why the subtrees of ``prefixes`` do not partition the search tree (empty: they do).
+
+    They do when no two overlap, and walking down from the root through the
+    proper ancestors of the prefixes ("inner" nodes) every child of an
+    inner node is a prefix or another inner node, and every prefix or inner
+    node is a child of its parent.  ``kids`` is only asked about nodes
+    already shown to be in the tree.  An overlap is reported alone.
+    """
+    clash = first_overlap(prefixes)
+    if clash is not None:  # the walk below assumes disjoint subtrees; it would only add noise
+        a, b = (prefix_text(s) for s in clash)
+        return [f"tasks {a} and {b} overlap" if a != b else f"task {a} appears twice"]
+    tops = set(prefixes)
+    if not tops:
+        return ["no task covers the tree"]
+    problems = []
+    inner = {p[:j] for p in tops for j in range(len(p))}
+    members: dict[Steps, set[Steps]] = {}
+    for node in tops | inner:
+        if node:
+            members.setdefault(node[:-1], set()).add(node)
+    level = [()] if () in inner else []
+    while level:
+        deep = [v for v in level if len(v) + 2 >= cells]
+        problems += [f"tasks below {prefix_text(v)} go deeper than the tree" for v in deep]
+        level = [v for v in level if len(v) + 2 < cells]
+        below = []
+        for node, steps in zip(level, kids(level)):
+            real = {node + (k,) for k in steps or ()}
+            for child in sorted(real):
+                if child in inner:
+                    below.append(child)
+                elif child not in tops:
+                    problems.append(f"the subtree {prefix_text(child)} belongs to no task")
+            problems += [f"task prefix {prefix_text(c)} is not a node of the tree"
+                         for c in sorted(members.get(node, set()) - real)]
+        level = below
+    return problems
+
+
+def split_problems(splits: list[tuple[Steps, list[Steps]]], kids: Kids, cells: int) -> list[str]:
+    """Why the children of split tasks are not their remainders (empty: they all are).
+
+    A task that ran out of budget stopped at some node D, about to expand
+    it; its remainder is D plus, at every level from D up to the task's
+    prefix, the siblings the search had not tried yet: those before the
+    path's step in the kernel's order of children.  So D determines the
+    remainder.  D is the deepest remainder task whose last step comes
+    latest in its parent's children; the remainder is then recomputed and
+    compared as a set.  (Losing D itself would look like a search that
+    finished D; the id-gap check catches that.)  All splits walk down
+    together, one batch of ``kids`` per level.
+    """
+    problems = []
+    walks = []  # [prefix, children, base (D's parent), kids lists from prefix down to base]
+    for prefix, children in splits:
+        name = prefix_text(prefix)
+        if not children:
+            problems.append(f"split task {name} has no remainder tasks")
+            continue
+        outside = [c for c in children if len(c) <= len(prefix) or c[:len(prefix)] != prefix]
+        if outside:
+            problems.append(f"remainder task {prefix_text(outside[0])} is not inside split task {name}")
+            continue
+        depth = max(len(c) for c in children)
+        base = next(c for c in children if len(c) == depth)[:-1]
+        if any(c[:-1] != base for c in children if len(c) == depth):
+            problems.append(f"the deepest remainder tasks of split task {name} are not siblings")
+        elif len(base) + 2 >= cells:
+            problems.append(f"remainder tasks of split task {name} go deeper than the tree")
+        else:
+            walks.append((prefix, children, base, []))
+    ready = []
+    while walks:
+        answers = kids([base[:len(prefix) + len(got)] for prefix, _, base, got in walks])
+        going = []
+        for walk, steps in zip(walks, answers):
+            prefix, _, base, got = walk
+            at = len(prefix) + len(got)  # length of the node just expanded
+            if steps is None:
+                problems.append(f"split task {prefix_text(prefix)}: {prefix_text(base[:at])} is not a node of the "
+                                "tree with nodes below it")
+                continue
+            got.append(steps)
+            if at == len(base):
+                ready.append(walk)
+            elif base[at] in steps:
+                going.append(walk)
+            else:
+                problems.append(f"split task {prefix_text(prefix)}: {prefix_text(base[:at + 1])} is not a node of "
+                                "the tree")
+        walks = going
+    for prefix, children, base, got in ready:
+        name = prefix_text(prefix)
+        last = [c[-1] for c in children if len(c) == len(base) + 1]
+        if any(step not in got[-1] for step in last):
+            problems.append(f"a deepest remainder task of split task {name} is not a node of the tree")
+            continue
+        stop = base + (max(last, key=got[-1].index),)
+        expected = {stop}
+        for j in range(len(stop) - 1, len(prefix) - 1, -1):
+            siblings = got[j - len(prefix)]
+            expected.update(stop[:j] + (k,) for k in siblings[:siblings.index(stop[j])])
+        found = set(children)
+        missing, extra = sorted(expected - found), sorted(found - expected)
+        if missing:
+            more = f" and {len(missing) - SHOWN} more" if len(missing) > SHOWN else ""
+            problems.append(f"split task {name} lacks remainder task(s) "
+                            f"{', '.join(map(prefix_text, missing[:SHOWN]))}{more}")
+        if extra:
+            problems.append(f"split task {name} has task(s) {', '.join(map(prefix_text, extra[:SHOWN]))} "
+                            "outside its remainder")
+    return problems
+
+
+def completeness_check(scan: Scan, kids: Kids, cells: int, gaps: list[tuple[int, int]] = ()) -> dict:
+    """No open task, the plan covers the tree, splits have their remainders, no overlap, no deleted task.
+
+    ``gaps`` are ranges of task ids next to this run's tasks that no task has.
+    """
+    problems = list(scan.malformed)
+    problems += [f"{scan.malformed_more} more malformed prefix(es)"] if scan.malformed_more else []
+    open_tasks = {s: scan.states[s] for s in ("pending", "running", "failed") if scan.states[s]}
+    if open_tasks:
+        problems.append("open tasks: " + ", ".join(f"{n} {s}" for s, n in open_tasks.items()))
+    problems += [f"task ids {a}..{b} are missing from the store (ids are never freed: deleted?)" if a != b else
+                 f"task id {a} is missing from the store (ids are never freed: deleted?)" for a, b in gaps]
+    problems += cover_problems(scan.tops, kids, cells)
+    for parent, steps in scan.children.items():
+        if parent not in scan.splits:
+            problems.append(f"{len(steps)} task(s) name task {parent} as parent, which is not a split task of this run")
+    problems += split_problems([(s, scan.children.get(i, [])) for i, s in scan.splits.items()], kids, cells)
+    clash = first_overlap(s for s, state, _ in scan.entries if state == "done")
+    if clash is not None:
+        problems.append("done tasks {} and {} overlap".format(*map(prefix_text, clash)))
+    tasks = sum(scan.states.values())
+    if problems:
+        return outcome(False, _listed(problems), problems=len(problems))
+    return outcome(True, f"all {tasks} task(s) closed ({scan.states['done']} done, {scan.states['split']} split); "
+                         f"the {len(scan.tops)} planned task(s) cover the tree; every split has its whole remainder; "
+                         "no done tasks overlap; no task id is missing")
+
+
+class TreeChildren:
+    """:data:`Kids` from the kernel for one map's tree, memoised, a batch at a time.
+
+    A node is expanded only once it is known to be in the tree (a child of a
+    node expanded before, or replayed by :func:`foldfarm.kernel.check_prefix`):
+    the compiled search does not check its input.
+    """
+
+    BATCH = 4096
+
+    def __init__(self, tables):
+        self.tables = tables
+        self.memo: dict[Steps, list[int] | None] = {}
+
+    def _expandable(self, node: Steps) -> bool:
+        from foldfarm.kernel import check_prefix
+
+        if len(node) + 2 >= self.tables.n:
+            return False
+        parent = self.memo.get(node[:-1]) if node else None
+        if parent is not None:
+            return node[-1] in parent
+        try:
+            check_prefix(self.tables, node)
+        except PrefixError:
+            return False
+        return True
+
+    def __call__(self, nodes: list[Steps]) -> list[list[int] | None]:
+        from foldfarm.kernel import expand_many
+
+        todo = []
+        for node in dict.fromkeys(nodes):
+            if node not in self.memo:
+                if self._expandable(node):
+                    todo.append(node)
+                else:
+                    self.memo[node] = None
+        for start in range(0, len(todo), self.BATCH):
+            batch = todo[start:start + self.BATCH]
+            for node, (steps, _) in zip(batch, expand_many(self.tables, batch, 0)):
+                self.memo[node] = steps
+        return [self.memo[v] for v in nodes]
+
+
+# --------------------------------------------------------------------------
+# Audit
+# --------------------------------------------------------------------------
+
+def parse_fraction(value: object) -> float:
+    """``value`` as an audit fraction in 0..1, or :class:`UserError`."""
+    try:
+        fraction = float(value)  # type: ignore[arg-type]
+    except (TypeError, ValueError):
+        fraction = math.nan
+    if not 0.0 <= fraction <= 1.0:
+        raise UserError(f"the audit fraction must be a number from 0 to 1 (0.01 audits 1% of the tasks), not {value!r}")
+    return fraction
+
+
+def sample_positions(done: int, fraction: float, seed: int) -> list[int]:
+    """Positions (0-based, in id order) of the done tasks to audit: ``fraction`` of ``done``, at least one.
+
+    >>> sample_positions(1000, 0.01, 7) == sample_positions(1000, 0.01, 7), len(sample_positions(50, 0.01, 0))
+    (True, 1)
+    >>> sample_positions(0, 0.5, 0), sample_positions(10, 0.0, 0), sample_positions(3, 1.0, 0)
+    ([], [], [0, 1, 2])
+    """
+    if done <= 0 or fraction <= 0:
+        return []
+    k = min(done, max(1, math.ceil(fraction * done)))
+    return sorted(random.Random(seed).sample(range(done), k))
+
+
+def pick_worker(workers: list[str], avoid: Iterable[str | None], turn: int = 0) -> str | None:
+    """A worker not in ``avoid`` (round robin by ``turn``), or None when every worker is to be avoided.
+
+    >>> pick_worker(["a", "b", "c"], ["a"], 0), pick_worker(["a", "b", "c"], ["a"], 1), pick_worker(["a"], ["a"])
+    ('b', 'c', None)
+    """
+    others = [w for w in workers if w not in set(avoid)]
+    return others[turn % len(others)] if others else None
+
+
+def judge_audit(recorded: int, second: int, third: int | None) -> str:
+    """Which count is out of line: ``"none"``, ``"first"`` (the recorded one), ``"second"``, or ``"unresolved"``.
+
+    >>> judge_audit(24, 24, None), judge_audit(24, 36, 36), judge_audit(24, 36, 24), judge_audit(24, 36, 48)
+    ('none', 'first', 'second', 'unresolved')
+    """
+    if recorded == second:
+        return "none"
+    if third == second:
+        return "first"
+    if third == recorded:
+        return "second"
+    return "unresolved"
+
+
+def audit_outcome(audited: int, fraction: float, seed: int, mismatches: list[dict], errors: list[str],
+                  same_worker: int = 0) -> dict:
+    """Summarise an audit: a mismatch fails it and names the worker that disagreed; a task that could not
+    be counted again (a lost worker) leaves it unconfirmed (None), not failed.  ``same_worker`` tasks were
+    counted again by the worker that recorded them (a one-worker cluster)."""
+    extra = {"audited": audited, "fraction": fraction, "seed": seed, "mismatches": mismatches, "errors": errors,
+             "same_worker": same_worker}
+    if not mismatches and not errors:
+        where = "another worker" if not same_worker else \
+            f"another worker ({same_worker} on the same one: the cluster has no other)"
+        return outcome(True, f"{audited} done task(s) counted again on {where}: all agree", **extra)
+    lines = []
+    for m in mismatches:
+        who = {"first": f"worker {m['recorded_by']} (which recorded it) disagrees",
+               "second": f"worker {m['audited_by']} (the auditor) disagrees",
+               "unresolved": "no two counts agree"}[m["verdict"]]
+        lines.append(f"task {m['task']} ({m['prefix']}) recorded {m['recorded']} by {m['recorded_by']}, "
+                     f"{m['audit']} on {m['audited_by']}, {m['third']} on {m['third_by']}: {who}")
+    if mismatches:
+        return outcome(False, f"{len(mismatches)} of {audited} audited task(s) disagree: {_listed(lines + errors)}",
+                       **extra)
+    return outcome(None, f"not confirmed: {len(errors)} of {audited} audited task(s) could not be counted again "
+                         f"(verify again): {_listed(errors)}", **extra)
+
+
+def _audit(store, sides: tuple[int, ...], sample: list, client, fraction: float, seed: int) -> dict:
+    """Count each sampled done task again on another worker; on a mismatch a third time."""
+    from foldfarm.run import work
+
+    workers = sorted(client.scheduler_info()["workers"])
+    if not workers:
+        return outcome(None, "skipped: the cluster has no workers", audited=0, fraction=fraction, seed=seed)
+    chosen = [pick_worker(workers, [row.worker], i) or workers[i % len(workers)] for i, row in enumerate(sample)]
+    futures = [client.submit(work, sides, [row.prefix], 0, 0, workers=[w], allow_other_workers=False, pure=False)
+               for row, w in zip(sample, chosen)]
+    mismatches, errors = [], []
+    for row, worker, future in zip(sample, chosen, futures):
+        try:
+            second = future.result()[0]
+        except Exception as exc:  # a lost worker: the task is not confirmed, say so
+            why = (str(exc).strip().splitlines() or [type(exc).__name__])[0]
+            errors.append(f"task {row.id} ({row.prefix}) could not be counted again on {worker}: {why}")
+            continue
+        by = second["worker"] or worker
+        if store.record_audit(row.id, second["count"], nodes=second["nodes"], seconds=second["seconds"], worker=by):
+            continue
+        third = None
+        third_worker = pick_worker(workers, [row.worker, by])
+        if third_worker is not None:
+            try:
+                third = client.submit(work, sides, [row.prefix], 0, 0, workers=[third_worker],
+                                      allow_other_workers=False, pure=False).result()[0]
+            except Exception:  # that worker is gone too: count here instead
+                third = None
+        if third is None:  # no third worker: this process counts it
+            third, third_worker = work(sides, [row.prefix], 0, 0)[0], None
+        third_by = third["worker"] or third_worker or "the verifying process"
+        store.record_audit(row.id, third["count"], nodes=third["nodes"], seconds=third["seconds"],
+                           worker=third["worker"] or third_worker)
+        verdict = judge_audit(int(row.count), second["count"], third["count"])
+        mismatches.append({
+            "task": row.id, "prefix": row.prefix, "recorded": int(row.count), "recorded_by": row.worker,
+            "audit": second["count"], "audited_by": by, "third": third["count"], "third_by": third_by,
+            "verdict": verdict,
+            "disagreeing_worker": {"first": row.worker, "second": by}.get(verdict),
+        })
+    same = sum(1 for row, w in zip(sample, chosen) if w == row.worker)
+    return audit_outcome(len(sample), fraction, seed, mismatches, errors, same)
+
+
+# --------------------------------------------------------------------------
+# Transpose
+# --------------------------------------------------------------------------
+
+def other_order(sides: tuple[int, ...]) -> tuple[int, ...] | None:
+    """Another order of ``sides`` (reversed if that differs), or None if every order is the same.
+
+    >>> other_order((3, 8)), other_order((2, 3, 2)), other_order((4, 4)), other_order(())
+    ((8, 3), (2, 2, 3), None, None)
+    """
+    reverse = tuple(reversed(sides))
+    if reverse != sides:
+        return reverse
+    return next((p for p in sorted(set(itertools.permutations(sides))) if p != sides), None)
+
+
+def transpose_check(total: int, other_run: int, other_order_text: str, other_total: int | None,
+                    other_state: str) -> dict:
+    """The total against the total of the same map searched in another side order."""
+    extra = {"run": other_run, "side_order": other_order_text, "value": other_total}
+    if other_total is None:
+        return outcome(False, f"run {other_run} ({other_order_text}) did not finish: {other_state}", **extra)
+    if other_total != total:
+        return outcome(False, f"{total} differs from {other_total} counted as {other_order_text} in run {other_run}",
+                       **extra)
+    return outcome(True, f"run {other_run} counted {other_total} as {other_order_text} ({other_state})", **extra)
+
+
+def _transpose(store, run, client, total: int, previous: dict | None) -> dict:
+    """Count the map again with its sides in another order (or reuse the run that did), compare."""
+    from foldfarm import run as runner
+
+    sides = _sides(run.side_order)
+    other = other_order(sides)
+    if other is None:
+        return outcome(None, f"every side order of {run.shape} gives the same search tree")
+    text = "x".join(map(str, other))
+    reuse = (previous or {}).get("run")
+    if reuse is not None:
+        try:
+            found = store.get_run(reuse)
+        except UserError:
+            found = None
+        if found is None or found.side_order != text:
+            reuse = None
+        elif found.state in FINISHED:
+            return transpose_check(total, reuse, text, found.total, found.state)
+        elif client is None:
+            return outcome(None, f"run {reuse} ({text}) is {found.state}; verify --transpose finishes it", run=reuse)
+    if client is None:
+        return outcome(None, "skipped: no cluster")
+    if reuse is None:
+        threads = max(1, sum(client.nthreads().values()))
+        settings = runner.Settings.from_dict({**run.settings, "order": "given"})
+        reuse = runner.create(store, text, settings, threads)
+    summary = runner.drive(store, client, reuse)
+    return transpose_check(total, reuse, text, summary.count, summary.state)
+
+
+# --------------------------------------------------------------------------
+# The whole verification
+# --------------------------------------------------------------------------
+
+def _sides(side_order: str) -> tuple[int, ...]:
+    return tuple(int(p) for p in side_order.split("x") if int(p) > 1)
+
+
+def verify_run(store, run_id: int, *, client=None, audit_fraction: float | None = None, transpose: bool = False,
+               seed: int = 0) -> dict:
+    """Run every check on run ``run_id``; store the outcome with a finished run; return the checks.
+
+    ``client`` (a Dask client) runs the audit and, with ``transpose``, the
+    run in another side order; without one they are reported skipped.
+    ``audit_fraction`` defaults to the run's ``audit`` setting; ``seed``
+    picks the audited tasks.  A run that is not finished is checked but
+    nothing is stored.
+    """
+    from foldfarm.kernel import tables_for
+
+    run = store.get_run(run_id)
+    finished = run.state in FINISHED
+    fraction = parse_fraction(run.settings.get("audit", DEFAULT_AUDIT) if audit_fraction is None else audit_fraction)
+    tables = tables_for(_sides(run.side_order))
+    positions = []
+    if client is not None:
+        positions = sample_positions(store.progress(run_id).tasks["done"], fraction, seed)
+    scan = scan_tasks(store.check_rows(run_id), symmetry_factor(tables.n), positions)
+    gaps = []
+    if scan.first_id is not None:
+        gaps = [(g.first, g.last) for g in store.task_id_gaps(scan.first_id, scan.last_id)
+                if run_id in (g.run_before, g.run_after)]
+    checks = {
+        "total": total_check(scan, run.total, finished),
+        "completeness": completeness_check(scan, TreeChildren(tables), tables.n, gaps),
+        "divisibility": divisibility_check(scan, tables.n),
+    }
+    if fraction == 0:
+        checks["audit"] = outcome(None, "skipped: audit fraction 0", audited=0, fraction=fraction, seed=seed)
+    elif client is None:
+        checks["audit"] = outcome(None, "skipped: no cluster", audited=0, fraction=fraction, seed=seed)
+    elif not scan.sample:
+        checks["audit"] = outcome(None, f"skipped: audit fraction {fraction:g} of "
+                                        f"{scan.states['done']} done task(s)", audited=0, fraction=fraction, seed=seed)
+    else:
+        checks["audit"] = _audit(store, tables.sides, scan.sample, client, fraction, seed)
+    checks["published"] = published_check(run.shape, scan.total, finished)
+    previous = (run.checks or {}).get("transpose")
+    if not finished:
+        checks["transpose"] = outcome(None, "run not finished: no total to compare yet")
+    elif transpose or (previous or {}).get("run") is not None:
+        checks["transpose"] = _transpose(store, run, client if transpose else None, scan.total, previous)
+    else:
+        checks["transpose"] = outcome(None, "not asked (verify --transpose counts the map in another side order)")
+    digest = certificate(run.side_order, scan.entries)
+    checks["certificate"] = certificate_check(digest, run.certificate)
+    if finished:
+        store.set_verification(run_id, passed(checks), checks=checks,
+                               certificate=digest if run.certificate is None else None)
+    return checks

@@ -1,0 +1,32 @@
+"""Count a run in this process, through the store, the way the coordinator does on a cluster.
+
+For tests of the checks and queries that need real runs (counts from the
+kernel, splits from node budgets) but no Dask cluster.
+"""
+
+from __future__ import annotations
+
+import time
+
+from foldfarm import run as runner
+
+#: The worker address recorded with every task counted here.
+HERE = "tcp://127.0.0.1:9"
+
+
+def count_here(store, shape: str, *, task_nodes: int = 30, tasks: int = 8, order: str = "fast") -> int:
+    """Plan ``shape``, count every task with :func:`foldfarm.run.work` (node budgets, so splits are
+    reproducible), record each result, and finish the run (which verifies it); return the run id."""
+    settings = runner.Settings(task_nodes=task_nodes, task_seconds=0, tasks=tasks, order=order)
+    run_id = runner.create(store, shape, settings, threads=1)
+    store.set_run_state(run_id, "running")
+    sides = tuple(int(p) for p in store.get_run(run_id).side_order.split("x") if int(p) > 1)
+    while batch := store.next_pending(run_id, 200):
+        store.mark_running([t.id for t in batch], HERE)
+        for task, out in zip(batch, runner.work(sides, [t.prefix for t in batch], task_nodes, 0)):
+            if out["complete"]:
+                store.record_done(task.id, out["count"], out["nodes"], out["seconds"], HERE)
+            else:
+                store.record_split(task.id, out["count"], out["nodes"], out["seconds"], HERE, out["remainder"])
+    runner.finish(store, run_id, time.perf_counter())
+    return run_id

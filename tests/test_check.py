@@ -1,0 +1,480 @@
+"""The aggregator's checks (foldfarm.check): plain functions, runs tampered with in the store, audits on a cluster.
+
+Counts come from the kernel (through real runs) and are compared with the
+published table (OEIS, named beside each value); nothing is hand-typed.
+"""
+
+from __future__ import annotations
+
+import itertools
+import math
+
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from local_driver import HERE, count_here
+from sqlalchemy import delete, select, update
+
+from foldfarm import check
+from foldfarm import run as runner
+from foldfarm.errors import UserError
+from foldfarm.kernel import count_below, expand, prepare, tables_for
+from foldfarm.plan import plan
+from foldfarm.prefix import parse_prefix, prefix_text
+from foldfarm.published import published, table
+from foldfarm.shape import parse_shape
+from foldfarm.store import CheckRow, Store, StoreError
+from foldfarm.store.models import Audit, Task
+
+SHAPE = "3x4"
+SHAPE_COUNT = published(SHAPE)[0].count  # OEIS A001416
+SHAPE_SOURCE = published(SHAPE)[0].source
+
+
+def kids_of(tables):
+    return check.TreeChildren(tables)
+
+
+# -- plain functions --------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize("shape", ["1x1", "2x1", "2x2", "2x3", "3x4", "2x2x2", "1x7"])
+def test_symmetry_factor_is_the_kernels_multiplier(shape):
+    tables = prepare(shape)
+    assert check.symmetry_factor(tables.n) == tables.factor
+
+
+def test_every_published_count_is_divisible_by_the_symmetry_factor():
+    for row in table():
+        cells = parse_shape(row.shape).cells
+        assert row.count % check.symmetry_factor(cells) == 0, f"{row.shape} ({row.source})"
+
+
+def test_plan_covers_the_tree_and_damage_is_named():
+    tables = prepare("4x4")
+    kids = kids_of(tables)
+    tasks = list(plan(tables, 40))
+    assert check.cover_problems(tasks, kids, tables.n) == []
+    missing = tasks[len(tasks) // 2]
+    problems = check.cover_problems([t for t in tasks if t != missing], kids, tables.n)
+    assert problems and prefix_text(missing) in " ".join(problems)
+    inside = missing + (expand(tables, missing)[0][0],) if len(missing) + 2 < tables.n else missing[:-1]
+    assert "overlap" in check.cover_problems(tasks + [inside], kids, tables.n)[0]
+    assert check.cover_problems([], kids, tables.n) == ["no task covers the tree"]
+    bogus = tasks[0][:-1] + (99,)
+    assert any("not a node" in p for p in check.cover_problems(tasks + [bogus], kids, tables.n))
+
+
+@settings(max_examples=60, deadline=None)
+@given(shape=st.sampled_from(["3x4", "2x2x3", "2x6", "1x9", "4x4"]), budget=st.integers(1, 300),
+       depth=st.integers(0, 3), pick=st.integers(0, 10**6))
+def test_a_real_remainder_passes_and_any_child_but_the_stopping_node_is_missed(shape, budget, depth, pick):
+    tables = prepare(shape)
+    prefix: tuple[int, ...] = ()
+    for _ in range(depth):  # walk down a random legal path
+        if len(prefix) + 3 >= tables.n:
+            break
+        children = expand(tables, prefix)[0]
+        if not children:
+            break
+        prefix += (children[pick % len(children)],)
+    out = count_below(tables, prefix, budget=budget)
+    kids = kids_of(tables)
+    if out.complete:
+        return
+    assert check.split_problems([(prefix, out.remainder)], kids, tables.n) == []
+    if len(out.remainder) > 1:
+        lost = out.remainder[1 + pick % (len(out.remainder) - 1)]
+        rest = [r for r in out.remainder if r != lost]
+        problems = check.split_problems([(prefix, rest)], kids, tables.n)
+        assert problems and prefix_text(lost) in problems[0]
+    extra = check.split_problems([(prefix, out.remainder + [prefix])], kids, tables.n)
+    assert extra and "not inside" in extra[0]
+
+
+def test_nodes_outside_the_tree_are_reported_not_expanded():
+    tables = prepare("3x4")
+    kids = kids_of(tables)
+    assert kids([(1, 3), (9,), (1, 2, 1, 1, 1, 1, 1, 1, 1, 1)]) == [None, None, None]  # illegal, illegal, too deep
+    problems = check.split_problems([((1, 3), [(1, 3, 1)])], kids, tables.n)
+    assert problems == ["split task /1/3: /1/3 is not a node of the tree with nodes below it"]
+    legal = (1, 2, expand(tables, (1, 2))[0][0])
+    problems = check.split_problems([((1, 2), [legal[:2] + (12,)])], kids, tables.n)
+    assert problems == ["a deepest remainder task of split task /1/2 is not a node of the tree"]
+
+
+def test_certificate_depends_on_every_pair_and_nothing_else():
+    entries = [((1, 2), "done", 24), ((1, 1), "split", 48), ((1, 3), "done", 0)]
+    a = check.certificate("4x3", entries)
+    assert a == check.certificate("4x3", list(reversed(entries)))
+    assert a != check.certificate("3x4", entries)
+    assert a != check.certificate("4x3", [((1, 2), "done", 48)] + entries[1:])
+    assert a != check.certificate("4x3", [((1, 2), "split", 24)] + entries[1:])
+    assert a != check.certificate("4x3", entries[:2])
+
+
+def test_scan_sums_exactly_and_flags_counts_off_the_factor():
+    big = 2**62  # far above 2**53: sums must stay exact
+    rows = [CheckRow(1, "/1", "done", big, None, HERE), CheckRow(2, "/2", "split", 24, None, HERE),
+            CheckRow(3, "/2/1", "done", big + 24, 2, HERE), CheckRow(4, "/3", "pending", None, None, None),
+            CheckRow(5, "/9//", "done", 24, None, HERE)]
+    scan = check.scan_tasks(rows, 24, [0, 1])
+    assert scan.total == 2 * big + 48
+    assert scan.states == {"done": 3, "split": 1, "pending": 1}
+    assert [r.id for r in scan.sample] == [1, 3]
+    assert scan.not_multiple == [("/1", big), ("/2/1", big + 24)]  # 2**62 is not a multiple of 24
+    assert scan.malformed and "/9//" in scan.malformed[0]
+
+
+def test_published_check_names_its_source():
+    good = check.published_check(SHAPE, SHAPE_COUNT, True)
+    assert good["ok"] is True and SHAPE_SOURCE in good["detail"]
+    bad = check.published_check(SHAPE, SHAPE_COUNT + 24, True)
+    assert bad["ok"] is False and SHAPE_SOURCE in bad["detail"] and str(SHAPE_COUNT) in bad["detail"]
+    assert check.published_check("2x2x2", 96, True)["ok"] is None  # none carried for hypercubes
+    assert check.published_check(SHAPE, 0, False)["ok"] is None
+
+
+def test_audit_decisions():
+    assert check.sample_positions(10_000, 0.01, 3) == check.sample_positions(10_000, 0.01, 3)
+    assert len(check.sample_positions(10_000, 0.01, 3)) == 100
+    assert check.sample_positions(10_000, 0.01, 3) != check.sample_positions(10_000, 0.01, 4)
+    assert len(check.sample_positions(7, 0.01, 0)) == 1
+    assert check.pick_worker(["a", "b"], [None]) == "a"
+    assert check.pick_worker(["a", "b"], ["a", "b"]) is None
+    assert check.judge_audit(5, 5, None) == "none"
+    mismatch = {"task": 7, "prefix": "/1/2", "recorded": 24, "recorded_by": "tcp://a:1", "audit": 48,
+                "audited_by": "tcp://b:1", "third": 24, "third_by": "tcp://c:1", "verdict": "second",
+                "disagreeing_worker": "tcp://b:1"}
+    out = check.audit_outcome(3, 0.5, 1, [mismatch], [])
+    assert out["ok"] is False and "tcp://b:1 (the auditor) disagrees" in out["detail"]
+    assert check.audit_outcome(3, 0.5, 1, [], [])["ok"] is True
+    for bad in ("-0.1", "1.5", "half", None):
+        with pytest.raises(UserError):
+            check.parse_fraction(bad)
+
+
+def test_other_order_is_another_tree():
+    for sides in [(3, 8), (2, 3, 2), (2, 2, 3), (5,), (4, 4), (2, 2, 2)]:
+        other = check.other_order(sides)
+        if len(set(sides)) == 1:
+            assert other is None
+        else:
+            assert other != sides and sorted(other) == sorted(sides)
+
+
+def test_passed_ignores_skipped_checks_only():
+    assert check.passed({"a": check.outcome(True, ""), "b": check.outcome(None, "skipped")})
+    assert not check.passed({"a": check.outcome(True, ""), "b": check.outcome(False, "")})
+
+
+# -- runs in a store (SQLite, and PostgreSQL when configured) ---------------------------------------
+
+
+@pytest.fixture
+def counted(new_store_url):
+    """A store holding a finished, verified run of SHAPE with splits; yields (store, run id)."""
+    store = Store(new_store_url())
+    run_id = count_here(store, SHAPE)
+    yield store, run_id
+    store.close()
+
+
+def tasks_where(store, *where):
+    with store.engine.connect() as conn:
+        return conn.execute(select(Task.id, Task.prefix, Task.state, Task.count, Task.parent_id)
+                            .where(*where).order_by(Task.id)).all()
+
+
+def change(store, *statements):
+    with store.engine.begin() as conn:
+        for statement in statements:
+            conn.execute(statement)
+
+
+def test_a_clean_run_passes_every_check(counted):
+    store, run_id = counted
+    info = store.get_run(run_id)
+    assert info.state == "verified" and info.verification == "passed"
+    assert info.total == SHAPE_COUNT, f"{SHAPE}: {SHAPE_SOURCE} publishes {SHAPE_COUNT}"
+    checks = info.checks
+    assert set(checks) == set(check.CHECKS)
+    for name in ("total", "completeness", "divisibility", "published", "certificate"):
+        assert checks[name]["ok"] is True, (name, checks[name])
+    assert checks["audit"]["ok"] is None and checks["audit"]["detail"] == "skipped: no cluster"
+    assert checks["published"]["detail"] == f"{SHAPE_COUNT} equals the published value ({SHAPE_SOURCE})"
+    assert checks["total"]["value"] == SHAPE_COUNT
+    assert checks["divisibility"]["factor"] == 24 and SHAPE_COUNT % 24 == 0
+    assert info.certificate == checks["certificate"]["digest"]
+    splits = tasks_where(store, Task.run_id == run_id, Task.state == "split")
+    assert splits, "the fixture run must have split tasks"
+    again = check.verify_run(store, run_id)
+    assert again["certificate"]["ok"] is True and "same as stored" in again["certificate"]["detail"]
+
+
+def _failed(store, run_id, **kw) -> dict:
+    checks = check.verify_run(store, run_id, **kw)
+    info = store.get_run(run_id)
+    assert info.state == "suspect" and info.verification == "failed"
+    return checks
+
+
+def test_a_changed_count_fails_total_divisibility_published_and_certificate(counted):
+    store, run_id = counted
+    victim = tasks_where(store, Task.run_id == run_id, Task.state == "done")[3]
+    change(store, update(Task).where(Task.id == victim.id).values(count=Task.count + 1))
+    checks = _failed(store, run_id)
+    assert checks["total"]["ok"] is False and str(SHAPE_COUNT) in checks["total"]["detail"]
+    assert checks["divisibility"]["ok"] is False and victim.prefix in checks["divisibility"]["detail"]
+    assert checks["published"]["ok"] is False and SHAPE_SOURCE in checks["published"]["detail"]
+    assert checks["certificate"]["ok"] is False
+    assert checks["completeness"]["ok"] is True
+    # Undoing the change makes the run pass again: suspect -> verified.
+    change(store, update(Task).where(Task.id == victim.id).values(count=victim.count))
+    assert check.passed(check.verify_run(store, run_id)) and store.get_run(run_id).state == "verified"
+
+
+def test_a_count_changed_by_the_factor_still_fails_total_published_certificate(counted):
+    store, run_id = counted
+    victim = tasks_where(store, Task.run_id == run_id, Task.state == "split")[0]
+    change(store, update(Task).where(Task.id == victim.id).values(count=Task.count + 24))
+    checks = _failed(store, run_id)
+    assert checks["divisibility"]["ok"] is True  # a multiple of the factor: only the other checks see it
+    assert checks["total"]["ok"] is False and checks["published"]["ok"] is False
+    assert checks["certificate"]["ok"] is False and checks["certificate"]["stored"] == store.get_run(run_id).certificate
+
+
+def test_a_deleted_task_fails_completeness(counted):
+    store, run_id = counted
+    victim = tasks_where(store, Task.run_id == run_id, Task.parent_id.is_(None), Task.state == "done")[0]
+    change(store, delete(Task).where(Task.id == victim.id))
+    checks = _failed(store, run_id)
+    detail = checks["completeness"]["detail"]
+    assert checks["completeness"]["ok"] is False
+    assert f"task id {victim.id} is missing" in detail and f"{victim.prefix} belongs to no task" in detail
+
+
+@pytest.mark.parametrize("which", ["stopping node", "sibling"])
+def test_a_missing_child_fails_completeness(counted, which):
+    store, run_id = counted
+    parents = {t.parent_id for t in tasks_where(store, Task.run_id == run_id, Task.parent_id.is_not(None))}
+    for parent in sorted(parents):
+        children = tasks_where(store, Task.parent_id == parent)
+        done = [c for c in children if c.state == "done"]
+        victim = children[0] if which == "stopping node" else (done[-1] if done and done[-1] != children[0] else None)
+        if victim is not None and victim.state == "done":
+            break
+    else:
+        pytest.fail("no split task with a done child to remove")
+    change(store, delete(Task).where(Task.id == victim.id))
+    checks = _failed(store, run_id)
+    assert checks["completeness"]["ok"] is False
+    if which == "sibling":
+        assert f"lacks remainder task(s) {victim.prefix}" in checks["completeness"]["detail"]
+    else:  # the structure alone cannot tell; the id left behind can
+        assert f"task id {victim.id} is missing" in checks["completeness"]["detail"]
+
+
+def test_a_duplicate_task_fails_completeness(counted):
+    """An overlapping task added and counted through the store's own API (an exact duplicate prefix is refused
+    by the store's unique key)."""
+    store, run_id = counted
+    tables = tables_for(tuple(int(p) for p in store.get_run(run_id).side_order.split("x")))
+    original = tasks_where(store, Task.run_id == run_id, Task.state == "done", Task.parent_id.is_not(None))[0]
+    around = parse_prefix(original.prefix)[:-1]  # its parent node: a subtree that contains it
+    store.add_tasks(run_id, [prefix_text(around)])
+    (dup,) = tasks_where(store, Task.run_id == run_id, Task.prefix == prefix_text(around))
+    store.mark_running([dup.id], HERE)
+    store.record_done(dup.id, count_below(tables, around).count, 1, 0.0, HERE)
+    checks = _failed(store, run_id)
+    assert checks["completeness"]["ok"] is False and "overlap" in checks["completeness"]["detail"]
+    assert checks["total"]["ok"] is False
+
+
+def test_a_child_of_a_done_task_fails_completeness(counted):
+    store, run_id = counted
+    child = tasks_where(store, Task.run_id == run_id, Task.parent_id.is_not(None), Task.state == "done")[0]
+    other = tasks_where(store, Task.run_id == run_id, Task.parent_id.is_(None), Task.state == "done")[0]
+    change(store, update(Task).where(Task.id == child.id).values(parent_id=other.id))
+    checks = _failed(store, run_id)
+    assert f"name task {other.id} as parent" in checks["completeness"]["detail"]
+
+
+def test_an_unfinished_run_is_checked_but_nothing_is_stored(new_store_url):
+    with Store(new_store_url()) as store:
+        run_id = runner.create(store, SHAPE, runner.Settings(tasks=8, task_seconds=0), 1)
+        checks = check.verify_run(store, run_id)
+        pending = store.progress(run_id).tasks["pending"]
+        assert checks["completeness"]["ok"] is False and f"{pending} pending" in checks["completeness"]["detail"]
+        assert checks["total"]["ok"] is None and checks["published"]["ok"] is None
+        info = store.get_run(run_id)
+        assert info.state == "planned" and info.checks is None and info.certificate is None
+
+
+def test_the_same_plan_counted_twice_has_the_same_certificate(new_store_url):
+    with Store(new_store_url()) as one, Store(new_store_url()) as two:
+        a, b = count_here(one, SHAPE), count_here(two, SHAPE)
+        c = count_here(two, SHAPE)
+        assert one.get_run(a).certificate == two.get_run(b).certificate == two.get_run(c).certificate
+        d = count_here(two, SHAPE, task_nodes=50)  # other budgets split elsewhere: same total, other tasks
+        assert two.get_run(d).total == SHAPE_COUNT and two.get_run(d).certificate != two.get_run(c).certificate
+        victim = tasks_where(two, Task.run_id == c, Task.state == "done")[0]
+        change(two, update(Task).where(Task.id == victim.id).values(count=Task.count + 24))
+        changed = check.verify_run(two, c)["certificate"]
+        assert changed["ok"] is False and changed["digest"] != one.get_run(a).certificate
+
+
+# -- store queries added for the checks and the query commands ------------------------------------
+
+
+def test_store_task_queries(counted):
+    store, run_id = counted
+    everything = store.tasks(run_id)
+    assert [t.id for t in everything] == sorted(t.id for t in everything)
+    by_count = store.tasks(run_id, ["done", "split"], "count", 5)
+    assert len(by_count) == 5 and [t.count for t in by_count] == sorted((t.count for t in by_count), reverse=True)
+    assert by_count[0].count == max(t.count for t in everything if t.count is not None)
+    assert {t.state for t in store.tasks(run_id, ["split"])} == {"split"}
+    assert store.tasks(run_id, ["pending"]) == []
+    by_time = store.tasks(run_id, order="time", limit=3)
+    assert [t.seconds for t in by_time] == sorted((t.seconds for t in by_time), reverse=True)
+    assert len(store.tasks(run_id, order="finished")) == len(everything)
+    for bad in ({"states": ["done", "finished"]}, {"order": "size"}, {"limit": -1}):
+        with pytest.raises(StoreError):
+            store.tasks(run_id, **bad)
+    with pytest.raises(StoreError, match="no run 999"):
+        store.tasks(999)
+    streamed = list(store.iter_tasks(run_id))
+    assert streamed == everything
+    rows = list(store.check_rows(run_id))
+    assert [(r.id, r.prefix, r.state, r.count, r.parent_id) for r in rows] == \
+        [(t.id, t.prefix, t.state, t.count, t.parent_id) for t in everything]
+    assert sum(r.count for r in rows if r.state in ("done", "split")) == SHAPE_COUNT  # OEIS A001416
+    assert store.runs_of_shape(SHAPE) == [(run_id, "verified")] and store.runs_of_shape("5x5") == []
+    assert store.audits(run_id) == []
+    with pytest.raises(StoreError):
+        store.iter_tasks(999)
+
+
+def test_store_id_gaps(counted):
+    store, run_id = counted
+    ids = [t.id for t in store.tasks(run_id)]
+    assert store.task_id_gaps(ids[0], ids[-1]) == []
+    done = [t.id for t in store.tasks(run_id, ["done"])]  # done tasks have no children: free to delete
+    pair = next(a for a, b in itertools.pairwise(done) if b == a + 1)
+    single = next(t for t in done if t > pair + 2)
+    change(store, delete(Task).where(Task.id.in_([pair, pair + 1, single])))
+    gaps = store.task_id_gaps(ids[0], ids[-1])
+    assert [(g.first, g.last, g.run_before, g.run_after) for g in gaps] == \
+        [(pair, pair + 1, run_id, run_id), (single, single, run_id, run_id)]
+    assert store.task_id_gaps(ids[-1] + 1, ids[-1] + 3)[0].run_after is None  # ids not handed out yet
+
+
+# -- audits and the other side order on a real cluster -----------------------------------------------
+
+
+@pytest.fixture(scope="module")
+def client():
+    from distributed import Client, LocalCluster
+
+    cluster = LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
+                           dashboard_address=None)
+    with Client(cluster) as c:
+        c.run(runner.warm_worker)
+        yield c
+    cluster.close()
+
+
+def _lie(offset: int) -> None:
+    """Make this worker process's kernel add ``offset`` to every count (the test's injected fault)."""
+    from foldfarm import kernel
+
+    honest = getattr(kernel, "_honest_count_below", kernel.count_below)
+    kernel._honest_count_below = honest
+
+    def wrong(*args, **kwargs):
+        out = honest(*args, **kwargs)
+        out.count += offset
+        return out
+
+    kernel.count_below = wrong
+
+
+def _tell_the_truth() -> None:
+    from foldfarm import kernel
+
+    kernel.count_below = getattr(kernel, "_honest_count_below", kernel.count_below)
+
+
+def cluster_run(store, client, shape=SHAPE) -> int:
+    settings = runner.Settings(task_nodes=30, task_seconds=0, tasks=8)
+    run_id = runner.create(store, shape, settings, threads=2)
+    runner.drive(store, client, run_id)
+    return run_id
+
+
+@pytest.mark.slow
+def test_a_cluster_run_is_audited_on_other_workers(client, new_store_url):
+    with Store(new_store_url()) as store:
+        run_id = cluster_run(store, client)
+        info = store.get_run(run_id)
+        assert info.state == "verified" and info.total == SHAPE_COUNT, f"{SHAPE_SOURCE}: {SHAPE_COUNT}"
+        assert info.checks["audit"]["ok"] is True and info.checks["audit"]["audited"] >= 1
+        checks = check.verify_run(store, run_id, client=client, audit_fraction=0.25, seed=5)
+        assert checks["audit"]["ok"] is True
+        done = store.progress(run_id).tasks["done"]
+        assert checks["audit"]["audited"] == math.ceil(0.25 * done)
+        recorded = {t.id: t.worker for t in store.tasks(run_id, ["done"])}
+        audits = store.audits(run_id)
+        assert len(audits) == info.checks["audit"]["audited"] + checks["audit"]["audited"]
+        assert all(a.matched and a.count == a.recorded for a in audits)
+        assert all(a.worker != recorded[a.task_id] for a in audits)  # never the worker that recorded it
+
+
+@pytest.mark.slow
+def test_the_audit_names_a_worker_that_counts_wrong(client, tmp_path):
+    liar = sorted(client.scheduler_info()["workers"])[1]
+    tables = prepare(SHAPE)
+    client.run(_lie, tables.factor, workers=[liar])  # wrong by a multiple of the factor: divisibility cannot see it
+    try:
+        with Store(f"sqlite:///{tmp_path / 'liar.sqlite'}") as store:
+            run_id = cluster_run(store, client)
+            info = store.get_run(run_id)
+            assert info.state == "suspect"
+            audit = info.checks["audit"]
+            assert audit["ok"] is False and liar in audit["detail"]
+            assert [m["disagreeing_worker"] for m in audit["mismatches"]] == [liar] * len(audit["mismatches"])
+            everything = check.verify_run(store, run_id, client=client, audit_fraction=1.0)
+            assert everything["divisibility"]["ok"] is True
+            assert {m["disagreeing_worker"] for m in everything["audit"]["mismatches"]} == {liar}
+            assert store.audit_summary(run_id)[1] >= len(everything["audit"]["mismatches"])
+    finally:
+        client.run(_tell_the_truth, workers=[liar])
+
+
+@pytest.mark.slow
+def test_a_changed_count_is_caught_by_the_audit(client, tmp_path):
+    with Store(f"sqlite:///{tmp_path / 'edited.sqlite'}") as store:
+        run_id = cluster_run(store, client)
+        victim = tasks_where(store, Task.run_id == run_id, Task.state == "done")[0]
+        worker = store.tasks(run_id, ["done"], limit=1)[0].worker
+        with store.engine.begin() as conn:
+            conn.execute(delete(Audit))
+            conn.execute(update(Task).where(Task.id == victim.id).values(count=Task.count + 24))
+        checks = check.verify_run(store, run_id, client=client, audit_fraction=1.0)
+        (mismatch,) = checks["audit"]["mismatches"]
+        assert mismatch["task"] == victim.id and mismatch["verdict"] == "first"
+        assert mismatch["disagreeing_worker"] == worker and mismatch["audit"] == mismatch["third"] == victim.count
+
+
+@pytest.mark.slow
+def test_the_other_side_order_gives_the_same_total(client, tmp_path):
+    with Store(f"sqlite:///{tmp_path / 'transpose.sqlite'}") as store:
+        run_id = cluster_run(store, client)
+        checks = check.verify_run(store, run_id, client=client, audit_fraction=0, transpose=True)
+        other = checks["transpose"]
+        assert other["ok"] is True and other["side_order"] == "4x3" and other["value"] == SHAPE_COUNT
+        assert store.get_run(other["run"]).side_order == "4x3" and store.progress(other["run"]).tasks["done"] > 0
+        again = check.verify_run(store, run_id)  # no cluster: the recorded run is compared again, not recounted
+        assert again["transpose"]["ok"] is True and again["transpose"]["run"] == other["run"]
+        assert [r[0] for r in store.runs_of_shape("4x3")] == [other["run"]]
