@@ -523,6 +523,37 @@ def sweep_cmd(
         raise typer.Exit(1)
 
 
+@app.command("estimate", context_settings={"ignore_unknown_options": True})
+@user_errors
+def estimate_cmd(
+    shape: str = typer.Argument(..., help="Map shape, e.g. 8x8."),
+    probes: str = typer.Option(None, "--probes", help="Random probes in all (default 5,000,000)."),
+    seed: str = typer.Option("0", "--seed", help="Seed of the probes: the same seed gives the same estimate."),
+    cores: str = typer.Option(None, "--cores", help="Cores to project the wall time for (default: this machine's)."),
+    given_order: bool = typer.Option(False, "--given-order", help="Search the sides in the order given."),
+    as_json: bool = typer.Option(False, "--json", help="Print one JSON object."),
+) -> None:
+    """Estimate the foldings of SHAPE, the size of its search and the cost of counting it (Knuth's probes)."""
+    from foldfarm.shape import parse_shape
+
+    parsed = parse_shape(shape)
+    n_probes = _whole(probes, "--probes", 1)
+    n_seed = _whole(seed, "--seed", 0)
+    n_cores = _whole(cores, "--cores", 1) or os.cpu_count() or 1
+    from foldfarm import estimate, kernel
+
+    kernel.warm()
+    tables = kernel.prepare(parsed, "given" if given_order else "fast")
+    est = estimate.estimate(tables, n_probes or estimate.DEFAULT_PROBES, n_seed)
+    spend = estimate.cost(est, estimate.calibrate(tables, seed=n_seed), n_cores)
+    if as_json:
+        emit_json({"shape": parsed.text, "cells": parsed.cells, "side_order": "x".join(map(str, tables.sides)) or "1",
+                   **estimate.as_json(est, spend)})
+    else:
+        for line in estimate.describe(parsed.text, est, spend):
+            typer.echo(line)
+
+
 def main() -> None:
     """Console-script entry point."""
     try:
