@@ -11,6 +11,7 @@ import json
 import os
 import sys
 import time
+from contextlib import nullcontext
 from typing import Callable
 
 import typer
@@ -180,9 +181,7 @@ def _drive(store, run_id: int, scheduler, workers, as_json: bool, quiet: bool, t
                        f"--store {store.display_url}", err=True)
             raise typer.Exit(130)
     finally:
-        client.close()
-        if cluster is not None:
-            cluster.close()
+        runner.disconnect(client, cluster)
     if as_json:
         emit_json(summary.as_json())
     else:
@@ -369,17 +368,10 @@ def verify_cmd(
     try:
         info = opened.get_run(run_id)
         fraction = check.parse_fraction(info.settings.get("audit", check.DEFAULT_AUDIT) if audit is None else audit)
-        client = cluster = None
-        if fraction > 0 or transpose:
-            client, cluster = runner.connect(scheduler, workers)
-        try:
+        # Only audits and the transposed run need a cluster.
+        with (runner.connected(scheduler, workers) if fraction > 0 or transpose else nullcontext()) as client:
             checks = check.verify_run(opened, run_id, client=client, audit_fraction=fraction, transpose=transpose,
                                       seed=chosen_seed)
-        finally:
-            if client is not None:
-                client.close()
-            if cluster is not None:
-                cluster.close()
         info = opened.get_run(run_id)
     finally:
         opened.close()
@@ -504,13 +496,8 @@ def sweep_cmd(
 
     opened = _open_store(store)
     try:
-        client, cluster = runner.connect(scheduler, workers)
-        try:
+        with runner.connected(scheduler, workers) as client:
             rows = sweep.sweep(opened, client, shapes, settings, fresh=fresh, on_row=show)
-        finally:
-            client.close()
-            if cluster is not None:
-                cluster.close()
     finally:
         opened.close()
     if table is not None:

@@ -44,6 +44,7 @@ import math
 import os
 import socket
 import time
+from contextlib import contextmanager
 from dataclasses import asdict, dataclass, field
 from typing import Any, Callable
 
@@ -618,6 +619,23 @@ def connect(scheduler: str | None, workers: int | None, quiet: bool = True):
     cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True, host="127.0.0.1",
                            dashboard_address="127.0.0.1:0", silence_logs=logging.ERROR if quiet else logging.WARNING)
     return Client(cluster), cluster
+
+
+def disconnect(client, cluster) -> None:
+    """Close a client from :func:`connect`, and the local cluster if it started one."""
+    client.close()
+    if cluster is not None:
+        cluster.close()
+
+
+@contextmanager
+def connected(scheduler: str | None, workers: int | None):
+    """:func:`connect` as a context manager yielding the client; closes both on the way out."""
+    client, cluster = connect(scheduler, workers)
+    try:
+        yield client
+    finally:
+        disconnect(client, cluster)
 
 
 def probe_scheduler(address: str, timeout: float = 5.0) -> None:
