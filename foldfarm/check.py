@@ -547,7 +547,7 @@ def audit_outcome(audited: int, fraction: float, seed: int, mismatches: list[dic
 
 def _audit(store, sides: tuple[int, ...], sample: list, client, fraction: float, seed: int) -> dict:
     """Count each sampled done task again on another worker; on a mismatch a third time."""
-    from foldfarm.run import work
+    from foldfarm.worker import work
 
     workers = sorted(client.scheduler_info()["workers"])
     if not workers:

@@ -7,6 +7,7 @@ stderr, ``foldfarm: <message>``, and exit code 2.
 from __future__ import annotations
 
 import functools
+import gc
 import json
 import os
 import sys
@@ -232,6 +233,10 @@ def run_cmd(
     if given_order:
         values["order"] = "given"
     settings = Settings.from_dict(values)
+    if scheduler is None:
+        from foldfarm.run import start_fork_server
+
+        start_fork_server()  # the local workers' kernel loads while the store opens and the plan is made
     opened = _open_store(store)
     try:
         _drive(opened, 0, scheduler, workers, as_json, quiet, False, new_shape=shape_text, settings=settings)
@@ -548,6 +553,11 @@ def main() -> None:
     except KeyboardInterrupt:
         typer.echo("foldfarm: interrupted", err=True)
         sys.exit(130)
+    finally:
+        # Every command has written and closed everything by now.  Freezing the collector's
+        # objects spares the interpreter's final collections over everything numba, Dask and
+        # SQLAlchemy created: exit takes milliseconds instead of about 0.7 s.
+        gc.freeze()
 
 
 if __name__ == "__main__":

@@ -4,10 +4,10 @@ Actors
 ------
 The **coordinator** (this module, one process per run, holding the run's
 lease) is the only writer of the run's tasks.  **Workers** (Dask, one
-single-threaded worker per core) run :func:`work`: count one prefix within a
-budget and return the count, or the partial count and the remainder.  The
-**store** (:mod:`foldfarm.store`) is the source of truth; Dask's own state
-is disposable.
+single-threaded worker per core) run :func:`foldfarm.worker.work`: count one
+prefix within a budget and return the count, or the partial count and the
+remainder.  The **store** (:mod:`foldfarm.store`) is the source of truth;
+Dask's own state is disposable.
 
 Protocol
 --------
@@ -91,54 +91,6 @@ class Settings:
 
 
 # --------------------------------------------------------------------------
-# Worker side
-# --------------------------------------------------------------------------
-
-def work(sides: tuple[int, ...], prefixes: list[str], task_nodes: int, task_seconds: float) -> list[dict]:
-    """Count the subtrees below ``prefixes`` of the map with working sides ``sides``.
-
-    Runs on a Dask worker; each prefix is one task with its own budget.
-    Returns one plain dict per prefix: ``count`` (foldings), ``nodes``,
-    ``seconds``, ``complete``, ``remainder`` (prefix texts) and ``worker``
-    (this worker's address).
-    """
-    from foldfarm.kernel import count_below, tables_for
-    from foldfarm.prefix import parse_prefix, prefix_text
-
-    tables = tables_for(tuple(sides))
-    address = _worker_address()
-    results = []
-    for prefix in prefixes:
-        out = count_below(tables, parse_prefix(prefix), budget=task_nodes or None, seconds=task_seconds or None)
-        results.append({
-            "count": out.count,
-            "nodes": out.nodes,
-            "seconds": out.seconds,
-            "complete": out.complete,
-            "remainder": [prefix_text(r) for r in out.remainder],
-            "worker": address,
-        })
-    return results
-
-
-def _worker_address() -> str | None:
-    try:
-        from distributed import get_worker
-
-        return get_worker().address
-    except (ImportError, ValueError):
-        return None
-
-
-def warm_worker() -> bool:
-    """Load the compiled kernel on a worker before its first task."""
-    from foldfarm.kernel import warm
-
-    warm()
-    return True
-
-
-# --------------------------------------------------------------------------
 # Decisions (no I/O)
 # --------------------------------------------------------------------------
 
@@ -172,20 +124,30 @@ def stale_lease(holder: str, here: str, alive: Callable[[int], bool]) -> bool:
 
 
 #: A bundle (one Dask task) should take about this many seconds of work...
-BUNDLE_SECONDS = 0.2
+BUNDLE_SECONDS = 1.0
 #: ...but hold at most this many prefix tasks.
 BUNDLE_MAX = 256
 
 
-def bundle_size(mean_task_seconds: float | None) -> int:
-    """Prefix tasks per Dask task: enough that Dask's ~ms per-task overhead stays small.
+def bundle_size(mean_task_seconds: float | None, share: int | None = None) -> int:
+    """Prefix tasks per Dask task: enough that Dask's per-task cost stays small, few enough to end together.
 
-    Unknown speed starts at one task per bundle; slow tasks (the normal
-    case on a cluster) always travel alone.
+    Each Dask task costs the coordinator about 5 ms of CPU (scheduler,
+    client and result transfer, measured on a local cluster), so short
+    prefix tasks travel in bundles of about :data:`BUNDLE_SECONDS` of work,
+    judged by their running mean time.  Unknown speed starts at one task per
+    bundle; slow tasks (the normal case on a cluster) always travel alone.
+    ``share`` caps a bundle at its share of the work not yet sent (guided
+    self-scheduling, after Polychronopoulos and Kuck, 1987): the last
+    bundles of a run shrink, so the threads finish close together instead
+    of one of them working through a last large bundle alone.
+
+    >>> bundle_size(None), bundle_size(0.01), bundle_size(0.01, share=7), bundle_size(300.0)
+    (1, 100, 7, 1)
     """
     if not mean_task_seconds or mean_task_seconds <= 0:
         return 1
-    return max(1, int(min(BUNDLE_MAX, BUNDLE_SECONDS / mean_task_seconds)))
+    return max(1, int(min(BUNDLE_MAX, BUNDLE_SECONDS / mean_task_seconds, share or BUNDLE_MAX)))
 
 
 Task = tuple[int, str, int]  # task id, prefix, attempt
@@ -226,9 +188,15 @@ class Dispatch:
         """How many claimed tasks it takes to fill the room."""
         return self.room() * bundle_size(self.mean_seconds)
 
-    def bundles(self) -> list[list[Task]]:
-        """Cut the claimed tasks into bundles for the room there is (first attempts)."""
-        size = bundle_size(self.mean_seconds)
+    def bundles(self, unsent: int | None = None) -> list[list[Task]]:
+        """Cut the claimed tasks into bundles for the room there is (first attempts).
+
+        ``unsent``, when known, is the number of open tasks not in flight
+        (claimed here or pending in the store): no bundle takes more than
+        its share of them over every slot of the window (:func:`bundle_size`).
+        """
+        share = -(-unsent // self.capacity) if unsent and unsent > 0 else None
+        size = bundle_size(self.mean_seconds, share)
         out = []
         while self.claimed and len(out) < self.room():
             head, self.claimed = self.claimed[:size], self.claimed[size:]
@@ -244,6 +212,9 @@ class Dispatch:
     def observed(self, seconds: float) -> None:
         """Fold one task's run time into the running mean (weight 1/16) that sizes bundles."""
         self.mean_seconds = seconds if self.mean_seconds is None else self.mean_seconds + (seconds - self.mean_seconds) / 16
+
+    def tasks_flying(self) -> int:
+        return sum(len(b) for b in self.flying.values())
 
     def busy(self) -> bool:
         return bool(self.flying or self.claimed)
@@ -395,6 +366,7 @@ def drive(store, client, run_id: int, *, holder: str | None = None, take_over: b
     """
     from foldfarm.kernel import tables_for
     from foldfarm.store import TaskResult
+    from foldfarm.worker import ReadyWorker, work
 
     started = time.perf_counter()
     holder = holder or holder_name()
@@ -410,7 +382,7 @@ def drive(store, client, run_id: int, *, holder: str | None = None, take_over: b
         store.reset_running(run_id, failed=True)
         if run.state != "running":
             store.set_run_state(run_id, "running")
-        client.run(warm_worker)
+        client.register_plugin(ReadyWorker())  # workers load the kernel, now and when they join
         threads = max(1, sum(client.nthreads().values()))
         dispatch = Dispatch(capacity=settings.window * threads, last_flush=time.monotonic())
         futures: dict[Any, str] = {}  # future -> bundle key
@@ -443,7 +415,8 @@ def drive(store, client, run_id: int, *, holder: str | None = None, take_over: b
                 if rows:
                     store.mark_running([r.id for r in rows])
                     dispatch.claimed.extend((r.id, r.prefix) for r in rows)
-            submit(dispatch.bundles())
+            # Open tasks not in flight: claimed here or pending in the store.
+            submit(dispatch.bundles(tally.known - tally.done - tally.failed - dispatch.tasks_flying()))
 
         def flush() -> None:
             if dispatch.done:
@@ -598,11 +571,17 @@ def connect(scheduler: str | None, workers: int | None, quiet: bool = True):
     """A Dask client: to ``scheduler`` if given, else to a new local cluster.
 
     The local cluster has ``workers`` single-threaded worker processes (default:
-    one per core) bound to 127.0.0.1.  Returns ``(client, cluster_or_None)``.
+    one per core) bound to 127.0.0.1, with :data:`foldfarm.worker.DASK_SETTINGS`;
+    the workers are forked from a server that loaded the kernel once
+    (:mod:`foldfarm.preload`, where the platform can fork), and each loads it
+    before registering otherwise.  Returns ``(client, cluster_or_None)``.
     """
     import logging
 
+    import dask
     from distributed import Client, LocalCluster
+
+    from foldfarm.worker import DASK_SETTINGS, ReadyWorker
 
     if quiet:
         for name in ("distributed", "distributed.nanny", "distributed.scheduler", "distributed.worker"):
@@ -616,9 +595,33 @@ def connect(scheduler: str | None, workers: int | None, quiet: bool = True):
     n = workers or os.cpu_count() or 1
     if n < 1:
         raise UserError("--workers must be at least 1")
-    cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True, host="127.0.0.1",
-                           dashboard_address="127.0.0.1:0", silence_logs=logging.ERROR if quiet else logging.WARNING)
+    settings = dict(DASK_SETTINGS)
+    if start_fork_server():
+        settings["distributed.worker.multiprocessing-method"] = "forkserver"
+    with dask.config.set(settings):  # read as the scheduler and nannies are built; nannies pass it on
+        cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True, host="127.0.0.1",
+                               dashboard_address="127.0.0.1:0", plugins={ReadyWorker()},
+                               silence_logs=logging.ERROR if quiet else logging.WARNING)
     return Client(cluster), cluster
+
+
+def start_fork_server() -> bool:
+    """Start the server that local worker processes are forked from, if the platform has one.
+
+    The server imports :mod:`foldfarm.preload` (Dask and the loaded kernel)
+    once, in its own process: called first thing, it does that while this
+    process opens the store and plans.  Idempotent; returns whether local
+    workers can be forked from it.
+    """
+    import multiprocessing
+    from multiprocessing import forkserver
+
+    if "forkserver" not in multiprocessing.get_all_start_methods():
+        return False
+    # Takes effect only for a server not yet running (Dask names its own list later; by then ours runs).
+    multiprocessing.get_context("forkserver").set_forkserver_preload(["foldfarm.preload"])
+    forkserver.ensure_running()
+    return True
 
 
 def disconnect(client, cluster) -> None:

@@ -9,13 +9,14 @@ from __future__ import annotations
 import time
 
 from foldfarm import run as runner
+from foldfarm.worker import work
 
 #: The worker address recorded with every task counted here.
 HERE = "tcp://127.0.0.1:9"
 
 
 def count_here(store, shape: str, *, task_nodes: int = 30, tasks: int = 8, order: str = "fast") -> int:
-    """Plan ``shape``, count every task with :func:`foldfarm.run.work` (node budgets, so splits are
+    """Plan ``shape``, count every task with :func:`foldfarm.worker.work` (node budgets, so splits are
     reproducible), record each result, and finish the run (which verifies it); return the run id."""
     settings = runner.Settings(task_nodes=task_nodes, task_seconds=0, tasks=tasks, order=order)
     run_id = runner.create(store, shape, settings, threads=1)
@@ -23,7 +24,7 @@ def count_here(store, shape: str, *, task_nodes: int = 30, tasks: int = 8, order
     sides = tuple(int(p) for p in store.get_run(run_id).side_order.split("x") if int(p) > 1)
     while batch := store.next_pending(run_id, 200):
         store.mark_running([t.id for t in batch], HERE)
-        for task, out in zip(batch, runner.work(sides, [t.prefix for t in batch], task_nodes, 0)):
+        for task, out in zip(batch, work(sides, [t.prefix for t in batch], task_nodes, 0)):
             if out["complete"]:
                 store.record_done(task.id, out["count"], out["nodes"], out["seconds"], HERE)
             else:

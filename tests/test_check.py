@@ -25,6 +25,7 @@ from foldfarm.published import published, table
 from foldfarm.shape import parse_shape
 from foldfarm.store import CheckRow, Store, StoreError
 from foldfarm.store.models import Audit, Task
+from foldfarm.worker import ReadyWorker
 
 SHAPE = "3x4"
 SHAPE_COUNT = published(SHAPE)[0].count  # OEIS A001416
@@ -380,7 +381,7 @@ def client():
     cluster = LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
                            dashboard_address=None)
     with Client(cluster) as c:
-        c.run(runner.warm_worker)
+        c.register_plugin(ReadyWorker())
         yield c
     cluster.close()
 

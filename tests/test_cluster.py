@@ -153,6 +153,29 @@ def test_killed_worker_loses_nothing(tmp_path):
         own.close()
 
 
+def local_workers(coordinator: subprocess.Popen) -> list:
+    """The worker processes of a coordinator's local cluster: forked from its fork server, or spawned."""
+    import psutil
+
+    family = psutil.Process(coordinator.pid).children(recursive=True)
+    forked = [p for p in family if p.ppid() != coordinator.pid]
+    return forked or [p for p in family if "resource_tracker" not in " ".join(p.cmdline())]
+
+
+def test_killed_local_worker_loses_nothing(tmp_path):
+    url = f"sqlite:///{tmp_path / 'kill-local.sqlite'}"
+    proc = start("run", LONG, "--workers", "2", "--store", url, "--task-nodes", "300000", "--json", "--quiet")
+    wait_for_done(url, 1, 40, proc)
+    victims = local_workers(proc)
+    assert len(victims) == 2, victims
+    victims[0].kill()  # SIGKILL; its nanny starts another worker, which loads the kernel before its first task
+    stdout, stderr = proc.communicate(timeout=300)
+    assert proc.returncode == 0, stderr
+    assert json.loads(stdout)["count"] == LONG_COUNT, f"{LONG}: OEIS A001416 publishes {LONG_COUNT}"
+    assert not victims[0].is_running()
+    assert_partition(url, 1, LONG_COUNT)
+
+
 @pytest.mark.parametrize("how", [signal.SIGKILL, signal.SIGINT], ids=["kill-9", "ctrl-c"])
 def test_interrupted_coordinator_resumes_without_recounting(cluster, tmp_path, how):
     url = f"sqlite:///{tmp_path / 'coordinator.sqlite'}"

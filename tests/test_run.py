@@ -55,6 +55,26 @@ def test_bundle_size_is_bounded(mean):
         assert size == 1  # real tasks travel alone
 
 
+@given(st.floats(min_value=1e-6, max_value=10.0), st.integers(1, 10**6), st.integers(1, 64))
+def test_no_bundle_takes_more_than_its_share_of_the_unsent_work(mean, unsent, capacity):
+    d = Dispatch(capacity=capacity, mean_seconds=mean)
+    d.claimed = [(i, f"/{i}") for i in range(1, min(unsent, 5000) + 1)]
+    share = -(-unsent // capacity)
+    sizes = [len(b) for b in d.bundles(unsent)]
+    assert sizes and all(1 <= n <= min(share, bundle_size(mean)) for n in sizes)
+
+
+def test_last_bundles_shrink_so_the_threads_finish_together():
+    def sizes(unsent: int) -> list[int]:
+        d = Dispatch(capacity=8, mean_seconds=0.01)  # a bundle of BUNDLE_SECONDS would hold 100 of these
+        d.claimed = [(i, f"/{i}") for i in range(1, unsent + 1)]
+        return [len(b) for b in d.bundles(unsent)]
+
+    assert sizes(1000) == [100] * 8  # plenty left: bundles of BUNDLE_SECONDS of work
+    assert sizes(200) == [25] * 8  # the last 200 spread over every slot of the window
+    assert sizes(5) == [1] * 5  # the very last ones travel alone
+
+
 @given(st.lists(st.integers(0, 5), max_size=40), st.integers(1, 6))
 def test_dispatch_never_exceeds_capacity_and_loses_no_task(answers, capacity):
     d = Dispatch(capacity=capacity, mean_seconds=0.01)

@@ -1,0 +1,24 @@
+"""Imported once by the local cluster's fork server: Dask and the compiled kernel, loaded.
+
+The local cluster (:func:`foldfarm.run.connect`) starts its worker
+processes with multiprocessing's *forkserver* method where the platform
+has it.  The fork server is a single-threaded process that imports this
+module once; every worker is then forked from it with Dask imported and
+the kernel loaded (about 1 CPU-second a worker otherwise, or a full
+compile each on a machine whose numba cache is still empty, every worker
+compiling the same code at once).
+
+Importing this module has that side effect on purpose, and nothing else
+imports it.  It never raises: a fork server whose preload failed would
+take every worker start down with it, and each worker loads the kernel
+itself anyway (:class:`foldfarm.worker.ReadyWorker`).
+"""
+
+try:
+    import distributed  # noqa: F401  (what the worker processes run)
+
+    from foldfarm.worker import warm_worker
+
+    warm_worker()
+except Exception:  # noqa: BLE001 - see the module docstring
+    pass
