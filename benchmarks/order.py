@@ -1,7 +1,7 @@
 """Which side order is fastest?  Times every distinct order of a few shapes.
 
 Prints, per shape, nodes and seconds for each order and the ratio to the
-default order (``foldfarm.kernel.fast_order``).  Orders are timed
+default order (``foldfarm.shape.fast_order``).  Orders are timed
 alternately, best of ``--repeat`` runs, in one process.
 
     python benchmarks/order.py [--repeat 3]
@@ -13,7 +13,8 @@ import argparse
 import itertools
 import time
 
-from foldfarm.kernel import count_below, fast_order, tables_for
+from foldfarm.kernel import count_below, tables_for
+from foldfarm.shape import fast_order
 
 SHAPES = [(5, 5), (3, 8), (2, 12), (4, 6), (3, 3, 3), (2, 3, 4)]
 

@@ -283,8 +283,9 @@ def cover_problems(prefixes: list[Steps], kids: Kids, cells: int) -> list[str]:
     They do when no two overlap, and walking down from the root through the
     proper ancestors of the prefixes ("inner" nodes) every child of an
     inner node is a prefix or another inner node, and every prefix or inner
-    node is a child of its parent.  ``kids`` is only asked about nodes
-    already shown to be in the tree.  An overlap is reported alone.
+    node is a child of its parent.  ``kids`` is asked about every inner node
+    first, in one batch, then level by level (it must not trust nodes it has
+    not checked: :class:`TreeChildren` does not).  An overlap is reported alone.
     """
     clash = first_overlap(prefixes)
     if clash is not None:  # the walk below assumes disjoint subtrees; it would only add noise
@@ -295,6 +296,7 @@ def cover_problems(prefixes: list[Steps], kids: Kids, cells: int) -> list[str]:
         return ["no task covers the tree"]
     problems = []
     inner = {p[:j] for p in tops for j in range(len(p))}
+    kids(sorted(inner, key=len))  # the whole walk in one batch (TreeChildren keeps the answers)
     members: dict[Steps, set[Steps]] = {}
     for node in tops | inner:
         if node:
@@ -329,7 +331,8 @@ def split_problems(splits: list[tuple[Steps, list[Steps]]], kids: Kids, cells: i
     latest in its parent's children; the remainder is then recomputed and
     compared as a set.  (Losing D itself would look like a search that
     finished D; the id-gap check catches that.)  All splits walk down
-    together, one batch of ``kids`` per level.
+    together, one batch of ``kids`` per level (after one batch of all the
+    nodes on their way down).
     """
     problems = []
     walks = []  # [prefix, children, base (D's parent), kids lists from prefix down to base]
@@ -351,6 +354,7 @@ def split_problems(splits: list[tuple[Steps, list[Steps]]], kids: Kids, cells: i
         else:
             walks.append((prefix, children, base, []))
     ready = []
+    kids(sorted({base[:k] for prefix, _, base, _ in walks for k in range(len(prefix), len(base) + 1)}, key=len))
     while walks:
         answers = kids([base[:len(prefix) + len(got)] for prefix, _, base, got in walks])
         going = []
@@ -424,44 +428,43 @@ def completeness_check(scan: Scan, kids: Kids, cells: int, gaps: list[tuple[int,
 class TreeChildren:
     """:data:`Kids` from the kernel for one map's tree, memoised, a batch at a time.
 
-    A node is expanded only once it is known to be in the tree (a child of a
-    node expanded before, or replayed by :func:`foldfarm.kernel.check_prefix`):
-    the compiled search does not check its input.
+    ``sides`` are the working sides of the map.  A node is expanded only
+    once it is known to be in the tree (a child of a node expanded before,
+    here or earlier in the same batch), or after the kernel replayed it: the
+    compiled search does not check its input.  ``fetch(nodes, trusted)``
+    does the kernel's part (:func:`foldfarm.worker.children` for these
+    sides): by default in this process, or on a Dask worker (see
+    :func:`verify_run`), where asking for a whole walk's nodes at once saves
+    a round trip a level.
     """
 
     BATCH = 4096
 
-    def __init__(self, tables):
-        self.tables = tables
+    def __init__(self, sides: tuple[int, ...], fetch: Callable[[list[Steps], list[bool]], list] | None = None):
+        from foldfarm.worker import children
+
+        self.cells = math.prod(sides)
+        self.fetch = fetch or (lambda nodes, trusted: children(sides, nodes, trusted))
         self.memo: dict[Steps, list[int] | None] = {}
 
-    def _expandable(self, node: Steps) -> bool:
-        from foldfarm.kernel import check_prefix
-
-        if len(node) + 2 >= self.tables.n:
-            return False
-        parent = self.memo.get(node[:-1]) if node else None
-        if parent is not None:
-            return node[-1] in parent
-        try:
-            check_prefix(self.tables, node)
-        except PrefixError:
-            return False
-        return True
-
     def __call__(self, nodes: list[Steps]) -> list[list[int] | None]:
-        from foldfarm.kernel import expand_many
-
-        todo = []
-        for node in dict.fromkeys(nodes):
-            if node not in self.memo:
-                if self._expandable(node):
-                    todo.append(node)
-                else:
-                    self.memo[node] = None
+        todo = sorted((v for v in dict.fromkeys(nodes) if v not in self.memo), key=len)  # parents first
         for start in range(0, len(todo), self.BATCH):
-            batch = todo[start:start + self.BATCH]
-            for node, (steps, _) in zip(batch, expand_many(self.tables, batch, 0)):
+            batch, trusted = [], []
+            for node in todo[start:start + self.BATCH]:
+                if len(node) + 2 >= self.cells:
+                    self.memo[node] = None
+                elif node and node[:-1] in self.memo:  # its parent was judged, and so it is
+                    steps = self.memo[node[:-1]]
+                    if steps is not None and node[-1] in steps:
+                        batch.append(node)
+                        trusted.append(True)
+                    else:
+                        self.memo[node] = None
+                else:  # replayed, or judged by its parent in the same batch
+                    batch.append(node)
+                    trusted.append(False)
+            for node, steps in zip(batch, self.fetch(batch, trusted)):
                 self.memo[node] = steps
         return [self.memo[v] for v in nodes]
 
@@ -644,7 +647,7 @@ def _transpose(store, run, client, total: int, previous: dict | None) -> dict:
     if reuse is None:
         threads = max(1, sum(client.nthreads().values()))
         settings = runner.Settings.from_dict({**run.settings, "order": "given"})
-        reuse = runner.create(store, text, settings, threads)
+        reuse = runner.create(store, text, settings, threads, client)
     summary = runner.drive(store, client, reuse)
     return transpose_check(total, reuse, text, summary.count, summary.state)
 
@@ -657,34 +660,44 @@ def _sides(side_order: str) -> tuple[int, ...]:
     return tuple(int(p) for p in side_order.split("x") if int(p) > 1)
 
 
+def _on_a_worker(client, sides: tuple[int, ...]) -> Callable[[list[Steps], list[bool]], list]:
+    """A ``fetch`` for :class:`TreeChildren` that runs the kernel on a worker of ``client``."""
+    from foldfarm.worker import children
+
+    return lambda nodes, trusted: client.submit(children, sides, nodes, trusted, pure=False).result()
+
+
 def verify_run(store, run_id: int, *, client=None, audit_fraction: float | None = None, transpose: bool = False,
                seed: int = 0) -> dict:
     """Run every check on run ``run_id``; store the outcome with a finished run; return the checks.
 
     ``client`` (a Dask client) runs the audit and, with ``transpose``, the
-    run in another side order; without one they are reported skipped.
+    run in another side order; without one they are reported skipped.  With
+    a client the kernel's part of the completeness check runs on a worker
+    too, so this process never loads the kernel.
     ``audit_fraction`` defaults to the run's ``audit`` setting; ``seed``
     picks the audited tasks.  A run that is not finished is checked but
     nothing is stored.
     """
-    from foldfarm.kernel import tables_for
-
     run = store.get_run(run_id)
     finished = run.state in FINISHED
     fraction = parse_fraction(run.settings.get("audit", DEFAULT_AUDIT) if audit_fraction is None else audit_fraction)
-    tables = tables_for(_sides(run.side_order))
+    sides = _sides(run.side_order)
+    cells = math.prod(sides)
     positions = []
+    kids = TreeChildren(sides)
     if client is not None:
         positions = sample_positions(store.progress(run_id).tasks["done"], fraction, seed)
-    scan = scan_tasks(store.check_rows(run_id), symmetry_factor(tables.n), positions)
+        kids = TreeChildren(sides, _on_a_worker(client, sides))
+    scan = scan_tasks(store.check_rows(run_id), symmetry_factor(cells), positions)
     gaps = []
     if scan.first_id is not None:
         gaps = [(g.first, g.last) for g in store.task_id_gaps(scan.first_id, scan.last_id)
                 if run_id in (g.run_before, g.run_after)]
     checks = {
         "total": total_check(scan, run.total, finished),
-        "completeness": completeness_check(scan, TreeChildren(tables), tables.n, gaps),
-        "divisibility": divisibility_check(scan, tables.n),
+        "completeness": completeness_check(scan, kids, cells, gaps),
+        "divisibility": divisibility_check(scan, cells),
     }
     if fraction == 0:
         checks["audit"] = outcome(None, "skipped: audit fraction 0", audited=0, fraction=fraction, seed=seed)
@@ -694,7 +707,7 @@ def verify_run(store, run_id: int, *, client=None, audit_fraction: float | None 
         checks["audit"] = outcome(None, f"skipped: audit fraction {fraction:g} of "
                                         f"{scan.states['done']} done task(s)", audited=0, fraction=fraction, seed=seed)
     else:
-        checks["audit"] = _audit(store, tables.sides, scan.sample, client, fraction, seed)
+        checks["audit"] = _audit(store, sides, scan.sample, client, fraction, seed)
     checks["published"] = published_check(run.shape, scan.total, finished)
     previous = (run.checks or {}).get("transpose")
     if not finished:

@@ -153,19 +153,10 @@ def _drive(store, run_id: int, scheduler, workers, as_json: bool, quiet: bool, t
         raise KeyboardInterrupt
 
     signal.signal(signal.SIGTERM, terminate)
-    if new_shape is not None and scheduler is None:
-        # Plan while the local cluster starts: each takes about a second.
-        from concurrent.futures import ThreadPoolExecutor
-
-        with ThreadPoolExecutor(1) as starter:
-            starting = starter.submit(runner.connect, None, workers)
-            run_id = runner.create(store, new_shape, settings, workers or os.cpu_count() or 1)
-            client, cluster = starting.result()
-    else:
-        client, cluster = runner.connect(scheduler, workers)
-        if new_shape is not None:
-            run_id = runner.create(store, new_shape, settings, max(1, sum(client.nthreads().values())))
+    client, cluster = runner.connect(scheduler, workers)
     try:
+        if new_shape is not None:  # planned on a worker, which has the kernel loaded
+            run_id = runner.create(store, new_shape, settings, max(1, sum(client.nthreads().values())), client)
         if not (quiet or as_json):
             typer.echo(f"dashboard: {client.dashboard_link}", err=True)
             if new_shape is not None:
@@ -233,10 +224,6 @@ def run_cmd(
     if given_order:
         values["order"] = "given"
     settings = Settings.from_dict(values)
-    if scheduler is None:
-        from foldfarm.run import start_fork_server
-
-        start_fork_server()  # the local workers' kernel loads while the store opens and the plan is made
     opened = _open_store(store)
     try:
         _drive(opened, 0, scheduler, workers, as_json, quiet, False, new_shape=shape_text, settings=settings)
@@ -546,8 +533,27 @@ def estimate_cmd(
             typer.echo(line)
 
 
+def _head_start(args: list[str]) -> None:
+    """Start the local cluster's fork server now, if the command will start a local cluster.
+
+    The server loads Dask and the kernel (about a second, on another core)
+    for the workers forked from it (:func:`foldfarm.run.start_fork_server`);
+    started before typer builds and parses the command line (0.3 s), it is
+    ready about as soon as this process has opened the store and started
+    the scheduler.  Judged from the raw arguments: ``run`` and ``resume``
+    without ``--scheduler``.  If it goes unused (a job file that names a
+    scheduler, bad input) it exits with this process.
+    """
+    if args[:1] in (["run"], ["resume"]) and not any(
+            a in ("--help", "--scheduler") or a.startswith("--scheduler=") for a in args):
+        from foldfarm.run import start_fork_server
+
+        start_fork_server()
+
+
 def main() -> None:
     """Console-script entry point."""
+    _head_start(sys.argv[1:])
     try:
         app()
     except KeyboardInterrupt:

@@ -88,34 +88,13 @@ import numba
 import numpy as np
 
 from foldfarm.prefix import PrefixError, parse_prefix
-from foldfarm.shape import Shape, neighbour_table, parse_shape
+from foldfarm.shape import Shape, fast_order, neighbour_table, parse_shape, working_sides  # noqa: F401
 
 #: Node expansions between two looks at the clock in a timed count.
 CLOCK_CHUNK = 1 << 20
 
 #: ``budget`` meaning "no limit".
 UNLIMITED = np.iinfo(np.int64).max
-
-
-def fast_order(sides: tuple[int, ...]) -> tuple[int, ...]:
-    """Side order the kernel uses by default: sides of 1 dropped, shortest first.
-
-    The count does not depend on the order, the cost does.  Measured with
-    ``benchmarks/order.py``: the shortest side first (the fastest-varying
-    leaf number) visits fewer nodes and is faster on every shape timed, for
-    example 12x2 visits 1.9 times the nodes of 2x12 and takes 2.6 times as
-    long, 4x3x2 takes 2.2 times as long as 2x3x4.
-    """
-    return tuple(sorted(p for p in sides if p > 1))
-
-
-def working_sides(shape: Shape, order: str = "fast") -> tuple[int, ...]:
-    """The sides the kernel searches: ``order="fast"`` or ``"given"`` (1s dropped)."""
-    if order == "fast":
-        return fast_order(shape.sides)
-    if order == "given":
-        return tuple(p for p in shape.sides if p > 1)
-    raise ValueError(f"side order must be 'fast' or 'given', not {order!r}")
 
 
 @dataclass(frozen=True)
@@ -669,6 +648,52 @@ def expand_many(tables: Tables, nodes: list[tuple[int, ...]], probes: int,
     for c in counts.tolist():
         out.append((kids_l[at:at + c], sizes_l[at:at + c]))
         at += c
+    return out
+
+
+def children_of(tables: Tables, nodes: list[tuple[int, ...]], trusted: list[bool]) -> list[list[int] | None]:
+    """The children of each node (next steps, in the search's order), None for a node not in the tree.
+
+    The compiled search does not check its input, so a node is expanded
+    only once it is known to be in the tree: ``trusted[i]`` says so for
+    node ``i``; a node whose parent is in ``nodes`` too is judged by its
+    parent's children; any other node is replayed first.  So a whole
+    subtree's worth of nodes can come in one batch (shallow to deep, one
+    compiled call a depth).  Every node must leave at least two leaves to
+    place (``len(node) + 2 < tables.n``).
+
+    >>> tables = prepare("2x3")
+    >>> children_of(tables, [(1, 2), (), (1,), (4,), (1, 2, 7)], [False, True, False, False, False])
+    [[2], [1], [2], None, None]
+    >>> children_of(tables, [(1, 2), (1, 3)], [False, False])  # both replayed; the second is no node
+    [[2], None]
+    """
+    found: dict[tuple[int, ...], list[int] | None] = {}
+    out: list[list[int] | None] = [None] * len(nodes)
+    by_depth = sorted(range(len(nodes)), key=lambda i: len(nodes[i]))
+    at = 0
+    while at < len(by_depth):
+        depth = len(nodes[by_depth[at]])
+        legal = []
+        while at < len(by_depth) and len(nodes[by_depth[at]]) == depth:
+            i, at = by_depth[at], at + 1
+            node = nodes[i]
+            if node and node[:-1] in found:
+                parent = found[node[:-1]]
+                ok = parent is not None and node[-1] in parent
+            elif trusted[i]:
+                ok = True
+            else:
+                try:
+                    check_prefix(tables, node)
+                    ok = True
+                except PrefixError:
+                    ok = False
+            found[node] = None
+            if ok:
+                legal.append(i)
+        for i, (kids, _) in zip(legal, expand_many(tables, [nodes[i] for i in legal], 0)):
+            out[i] = found[nodes[i]] = kids
     return out
 
 

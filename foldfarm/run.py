@@ -11,9 +11,11 @@ Dask's own state is disposable.
 
 Protocol
 --------
-1. *Plan*: create the run, then add the planner's prefixes in one
-   transaction.  A run whose plan never landed (state ``planned``, no
-   tasks) is planned again on resume; the plan is deterministic.
+1. *Plan*: a worker makes the plan (the coordinator never runs the
+   kernel itself when it has a cluster); create the run, then add the
+   planner's prefixes in one transaction.  A run whose plan never landed
+   (state ``planned``, no tasks) is planned again on resume; the plan is
+   deterministic.
 2. *Dispatch*: keep at most :attr:`Settings.window` tasks per worker thread
    in flight: take pending tasks from the store, mark them running, submit.
 3. *Record*: a finished task is recorded ``done`` (batched, one
@@ -331,31 +333,32 @@ def take_lease(store, run_id: int, holder: str, force: bool = False) -> None:
             raise
 
 
-def create(store, shape_text: str, settings: Settings, threads: int) -> int:
-    """Create a run of ``shape_text`` and store its plan; return the run id."""
-    from foldfarm.shape import parse_shape
-    from foldfarm.kernel import prepare
-
-    from foldfarm.estimate import estimate
+def create(store, shape_text: str, settings: Settings, threads: int, client=None) -> int:
+    """Create a run of ``shape_text`` with its plan (made on a worker of ``client`` if given); return its id."""
+    from foldfarm.shape import parse_shape, working_sides
 
     shape = parse_shape(shape_text)
-    tables = prepare(shape, settings.order)
+    sides = working_sides(shape, settings.order)
     settings = Settings.from_dict({**settings.to_dict(), "tasks": target_tasks(settings, threads)})
-    # A quick estimate of the search (~0.1 s) gives the progress display its ETA.
-    guess = estimate(tables, ETA_PROBES, settings.seed).nodes if tables.n > 1 else 0.0
-    run_id = store.create_run(shape.text, "x".join(map(str, tables.sides)) or "1",
-                              {**settings.to_dict(), "estimated_nodes": guess})
-    store_plan(store, run_id, tables, settings)
+    prefixes, nodes = planned(sides, settings, client)
+    run_id = store.create_run(shape.text, "x".join(map(str, sides)) or "1",
+                              {**settings.to_dict(), "estimated_nodes": nodes})
+    store.add_tasks(run_id, prefixes)  # one transaction; if we die before it, resume plans again
     return run_id
 
 
-def store_plan(store, run_id: int, tables, settings: Settings) -> int:
-    """Add the deterministic plan of a run as pending tasks, in one transaction."""
-    from foldfarm.plan import plan
-    from foldfarm.prefix import prefix_text
+def planned(sides: tuple[int, ...], settings: Settings, client=None) -> tuple[list[str], float]:
+    """The deterministic plan of a run (prefix texts) and a quick estimate of its search nodes (for ETAs).
 
-    return store.add_tasks(run_id, (prefix_text(p) for p in plan(tables, settings.tasks, settings.probes,
-                                                                  settings.seed)))
+    Made on a worker of ``client`` when there is one, where the kernel is
+    loaded already (this process then never loads it), else here.
+    """
+    from foldfarm.worker import plan_tasks
+
+    args = (sides, settings.tasks, settings.probes, settings.seed, ETA_PROBES)
+    if client is None:
+        return plan_tasks(*args)
+    return client.submit(plan_tasks, *args, pure=False).result()
 
 
 def drive(store, client, run_id: int, *, holder: str | None = None, take_over: bool = False,
@@ -364,7 +367,6 @@ def drive(store, client, run_id: int, *, holder: str | None = None, take_over: b
 
     Raises :class:`Stopped` after a clean stop on Ctrl-C.
     """
-    from foldfarm.kernel import tables_for
     from foldfarm.store import TaskResult
     from foldfarm.worker import ReadyWorker, work
 
@@ -377,12 +379,12 @@ def drive(store, client, run_id: int, *, holder: str | None = None, take_over: b
     sides = tuple(int(p) for p in run.side_order.split("x") if int(p) > 1)
     take_lease(store, run_id, holder, force=take_over)
     try:
+        client.register_plugin(ReadyWorker())  # workers load the kernel, now and when they join
         if needs_plan(run.state, sum(store.progress(run_id).tasks.values())):
-            store_plan(store, run_id, tables_for(sides), settings)
+            store.add_tasks(run_id, planned(sides, settings, client)[0])
         store.reset_running(run_id, failed=True)
         if run.state != "running":
             store.set_run_state(run_id, "running")
-        client.register_plugin(ReadyWorker())  # workers load the kernel, now and when they join
         threads = max(1, sum(client.nthreads().values()))
         dispatch = Dispatch(capacity=settings.window * threads, last_flush=time.monotonic())
         futures: dict[Any, str] = {}  # future -> bundle key

@@ -97,6 +97,27 @@ def parse_shape(text: str) -> Shape:
     return shape
 
 
+def fast_order(sides: tuple[int, ...]) -> tuple[int, ...]:
+    """Side order the kernel uses by default: sides of 1 dropped, shortest first.
+
+    The count does not depend on the order, the cost does.  Measured with
+    ``benchmarks/order.py``: the shortest side first (the fastest-varying
+    leaf number) visits fewer nodes and is faster on every shape timed, for
+    example 12x2 visits 1.9 times the nodes of 2x12 and takes 2.6 times as
+    long, 4x3x2 takes 2.2 times as long as 2x3x4.
+    """
+    return tuple(sorted(p for p in sides if p > 1))
+
+
+def working_sides(shape: Shape, order: str = "fast") -> tuple[int, ...]:
+    """The sides the kernel searches: ``order="fast"`` or ``"given"`` (1s dropped)."""
+    if order == "fast":
+        return fast_order(shape.sides)
+    if order == "given":
+        return tuple(p for p in shape.sides if p > 1)
+    raise ValueError(f"side order must be 'fast' or 'given', not {order!r}")
+
+
 def strides(sides: tuple[int, ...]) -> np.ndarray:
     """``stride[i]``: leaf-number step between neighbours in dimension ``i``."""
     out = np.ones(len(sides), dtype=np.int64)

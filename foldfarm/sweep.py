@@ -117,7 +117,7 @@ def sweep(store, client, shapes: list[tuple[int, str]], settings, *, fresh: bool
     rows = []
     for index, shape in shapes:
         earlier = [] if fresh else store.runs_of_shape(shape)
-        run_id = earlier[-1][0] if earlier else runner.create(store, shape, settings, threads)
+        run_id = earlier[-1][0] if earlier else runner.create(store, shape, settings, threads, client)
         summary = runner.drive(store, client, run_id)
         checks = store.get_run(run_id).checks or {}
         row = Row(index, shape, run_id, summary.count, summary.state,

@@ -1,8 +1,14 @@
-"""What runs on a Dask worker: the task function and the plugin that readies each worker.
+"""What runs on a Dask worker: the kernel's jobs and the plugin that readies each worker.
 
 :func:`work` counts prefix tasks within a budget and returns plain dicts;
 it is what the coordinator (:mod:`foldfarm.run`) submits, and what the
 audit (:mod:`foldfarm.check`) submits again on another worker.
+:func:`plan_tasks` (the plan of a new run) and :func:`children` (the tree
+the completeness check walks) are the coordinator's other uses of the
+kernel: given a cluster it sends them to a worker, so the coordinator
+itself never loads numba (about 0.6 s of CPU at start-up, the compiler's
+memory, and on a cluster's login node a compile of its own).  Without a
+cluster they run in the calling process.
 
 :class:`ReadyWorker` is a Dask worker plugin.  On a worker that starts (or
 joins a running cluster later) it loads the compiled kernel before the
@@ -70,6 +76,31 @@ def work(sides: tuple[int, ...], prefixes: list[str], task_nodes: int, task_seco
     return results
 
 
+def plan_tasks(sides: tuple[int, ...], target: int, probes: int, seed: int,
+               eta_probes: int) -> tuple[list[str], float]:
+    """The planner's prefixes (texts) for the map with working sides ``sides``, and its search size.
+
+    The size is a quick Knuth estimate of the nodes in the whole search
+    tree (``eta_probes`` probes; 0 for a single cell), for progress ETAs.
+    Runs on a worker, where the kernel is loaded, or in the coordinator.
+    """
+    from foldfarm.estimate import estimate
+    from foldfarm.kernel import tables_for
+    from foldfarm.plan import plan
+    from foldfarm.prefix import prefix_text
+
+    tables = tables_for(tuple(sides))
+    nodes = estimate(tables, eta_probes, seed).nodes if tables.n > 1 else 0.0
+    return [prefix_text(p) for p in plan(tables, target, probes, seed)], nodes
+
+
+def children(sides: tuple[int, ...], nodes: list[tuple[int, ...]], trusted: list[bool]) -> list[list[int] | None]:
+    """:func:`foldfarm.kernel.children_of` for the map with working sides ``sides`` (what the checks ask)."""
+    from foldfarm.kernel import children_of, tables_for
+
+    return children_of(tables_for(tuple(sides)), nodes, trusted)
+
+
 def worker_address() -> str | None:
     """The address of the Dask worker running this code, or None outside a worker."""
     from distributed import get_worker
@@ -81,10 +112,13 @@ def worker_address() -> str | None:
 
 
 def warm_worker() -> bool:
-    """Load the compiled kernel in this process (a no-op once loaded)."""
-    from foldfarm.kernel import warm
+    """Load every compiled function a worker calls (counting, planning, the checks' children); a no-op once loaded."""
+    from foldfarm.kernel import expand_many, prepare, probe, warm
 
     warm()
+    tables = prepare("2x3")
+    expand_many(tables, [()], 2)
+    probe(tables, (), 2)
     return True
 
 

@@ -33,7 +33,7 @@ SHAPE_SOURCE = published(SHAPE)[0].source
 
 
 def kids_of(tables):
-    return check.TreeChildren(tables)
+    return check.TreeChildren(tables.sides)
 
 
 # -- plain functions --------------------------------------------------------------------------
@@ -479,3 +479,23 @@ def test_the_other_side_order_gives_the_same_total(client, tmp_path):
         again = check.verify_run(store, run_id)  # no cluster: the recorded run is compared again, not recounted
         assert again["transpose"]["ok"] is True and again["transpose"]["run"] == other["run"]
         assert [r[0] for r in store.runs_of_shape("4x3")] == [other["run"]]
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("damage", ["none", "deleted plan task", "missing remainder task", "no node"])
+def test_completeness_checked_on_a_worker_agrees_with_the_check_here(client, counted, damage):
+    """With a cluster the kernel's part of the completeness check runs on a worker, in one batch a walk."""
+    store, run_id = counted
+    tops = tasks_where(store, Task.run_id == run_id, Task.parent_id.is_(None), Task.state == "done")
+    if damage == "deleted plan task":
+        change(store, delete(Task).where(Task.id == tops[0].id))
+    elif damage == "missing remainder task":
+        split = tasks_where(store, Task.run_id == run_id, Task.state == "split")[0]
+        last = [c for c in tasks_where(store, Task.parent_id == split.id) if c.state == "done"][-1]
+        change(store, delete(Task).where(Task.id == last.id))
+    elif damage == "no node":
+        change(store, update(Task).where(Task.id == tops[0].id).values(prefix=tops[0].prefix + "/99"))
+    here = check.verify_run(store, run_id)["completeness"]
+    there = check.verify_run(store, run_id, client=client, audit_fraction=0)["completeness"]
+    assert there == here
+    assert here["ok"] is (damage == "none"), here

@@ -211,6 +211,18 @@ def test_unreachable_scheduler_is_one_line(tmp_path):
     assert out.stderr.count("\n") == 1 and "cannot reach the Dask scheduler" in out.stderr, out.stderr
 
 
+def test_the_coordinator_never_loads_the_kernel(tmp_path):
+    """Planning and the checks' tree walk run on workers: the coordinator needs no compiler."""
+    url = f"sqlite:///{tmp_path / 'light.sqlite'}"
+    code = ("import sys\nfrom foldfarm.cli import main\ntry:\n    main()\nfinally:\n"
+            "    print('loaded:', sorted(m for m in ('numba', 'foldfarm.kernel') if m in sys.modules), file=sys.stderr)")
+    out = subprocess.run([sys.executable, "-c", code, "run", "3x5", "--workers", "2", "--store", url, "--json"],
+                         capture_output=True, text=True, timeout=300)
+    assert out.returncode == 0, out.stderr
+    assert json.loads(out.stdout)["count"] == 201240  # OEIS A001416, 3x5
+    assert out.stderr.strip().splitlines()[-1] == "loaded: []", out.stderr
+
+
 def test_local_cluster_default(tmp_path):
     url = f"sqlite:///{tmp_path / 'local.sqlite'}"
     out = foldfarm("run", "3x5", "--workers", "2", "--store", url, "--json")
