@@ -594,9 +594,7 @@ def connect(scheduler: str | None, workers: int | None, quiet: bool = True):
             return Client(scheduler, timeout="10s"), None
         except (OSError, TimeoutError, ValueError) as exc:
             raise SchedulerError(f"cannot reach the Dask scheduler at {scheduler}: {_first_line(exc)}") from None
-    n = workers or os.cpu_count() or 1
-    if n < 1:
-        raise UserError("--workers must be at least 1")
+    n = local_workers(workers)
     settings = dict(DASK_SETTINGS)
     if start_fork_server():
         settings["distributed.worker.multiprocessing-method"] = "forkserver"
@@ -607,13 +605,21 @@ def connect(scheduler: str | None, workers: int | None, quiet: bool = True):
     return Client(cluster), cluster
 
 
+def local_workers(workers: int | None) -> int:
+    """Worker processes of a local cluster: ``workers``, or one per core; :class:`UserError` below 1."""
+    n = workers or os.cpu_count() or 1
+    if n < 1:
+        raise UserError("--workers must be at least 1")
+    return n
+
+
 def start_fork_server() -> bool:
     """Start the server that local worker processes are forked from, if the platform has one.
 
     The server imports :mod:`foldfarm.preload` (Dask and the loaded kernel)
-    once, in its own process: called first thing, it does that while this
-    process opens the store and plans.  Idempotent; returns whether local
-    workers can be forked from it.
+    once, in its own process: called early, it does that while this process
+    imports Dask and starts the scheduler.  Idempotent; returns whether
+    local workers can be forked from it.
     """
     import multiprocessing
     from multiprocessing import forkserver

@@ -57,6 +57,8 @@ def test_malformed_shape_exits_2_with_one_line(shape):
     (["run", "3x", "--store", "sqlite:///{tmp}/s.sqlite"], "not a shape"),
     (["run", "{tmp}/missing.toml", "--store", "sqlite:///{tmp}/s.sqlite"], "does not exist"),
     (["run", "2x3", "--scheduler", "tcp://127.0.0.1:1", "--store", "sqlite:///{tmp}/s.sqlite"], "scheduler"),
+    (["run", "2x3", "--workers", "-1", "--store", "sqlite:///{tmp}/s.sqlite"], "--workers"),
+    (["run", "2x3", "--store", "bogus://x"], "store URL"),
 ])
 def test_bad_input_to_run_commands_is_one_line(tmp_path, args, needle):
     out = foldfarm(*[a.replace("{tmp}", str(tmp_path)) for a in args])
