@@ -618,7 +618,7 @@ def start_fork_server() -> bool:
 
     The server imports :mod:`foldfarm.preload` (Dask and the loaded kernel)
     once, in its own process: called early, it does that while this process
-    imports Dask and starts the scheduler.  Idempotent; returns whether
+    opens the store, imports Dask and starts the scheduler.  Idempotent; returns whether
     local workers can be forked from it.
     """
     import multiprocessing
