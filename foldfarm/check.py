@@ -685,10 +685,9 @@ def verify_run(store, run_id: int, *, client=None, audit_fraction: float | None 
     sides = _sides(run.side_order)
     cells = math.prod(sides)
     positions = []
-    kids = TreeChildren(sides)
     if client is not None:
         positions = sample_positions(store.progress(run_id).tasks["done"], fraction, seed)
-        kids = TreeChildren(sides, _on_a_worker(client, sides))
+    kids = TreeChildren(sides, None if client is None else _on_a_worker(client, sides))
     scan = scan_tasks(store.check_rows(run_id), symmetry_factor(cells), positions)
     gaps = []
     if scan.first_id is not None:

@@ -257,6 +257,10 @@ class Tally:
         self.nodes += out["nodes"]
         self.known += len(out["remainder"])
 
+    def open(self) -> int:
+        """Tasks created and not answered: pending in the store, claimed, or in flight."""
+        return self.known - self.done - self.failed
+
     def rate(self, now: float | None = None) -> float:
         """Nodes per second since this coordinator started."""
         elapsed = (now or time.monotonic()) - self.started
@@ -417,8 +421,7 @@ def drive(store, client, run_id: int, *, holder: str | None = None, take_over: b
                 if rows:
                     store.mark_running([r.id for r in rows])
                     dispatch.claimed.extend((r.id, r.prefix) for r in rows)
-            # Open tasks not in flight: claimed here or pending in the store.
-            submit(dispatch.bundles(tally.known - tally.done - tally.failed - dispatch.tasks_flying()))
+            submit(dispatch.bundles(tally.open() - dispatch.tasks_flying()))
 
         def flush() -> None:
             if dispatch.done:
@@ -618,8 +621,8 @@ def start_fork_server() -> bool:
 
     The server imports :mod:`foldfarm.preload` (Dask and the loaded kernel)
     once, in its own process: called early, it does that while this process
-    opens the store, imports Dask and starts the scheduler.  Idempotent; returns whether
-    local workers can be forked from it.
+    opens the store, imports Dask and starts the scheduler.  Idempotent;
+    returns whether local workers can be forked from it.
     """
     import multiprocessing
     from multiprocessing import forkserver

@@ -112,6 +112,7 @@ def test_tally_and_eta():
     t.started -= 10.0
     t.answered({"count": 5, "nodes": 100, "remainder": ["/1/2", "/1/3"]})
     assert (t.known, t.done, t.counted, t.nodes) == (6, 2, 15, 200)
+    assert t.open() == 4  # the 3 pending and the 2 remainder tasks, less the one answered
     assert t.rate() == pytest.approx(10.0, rel=0.01)
     assert t.eta() == pytest.approx(90.0, rel=0.01)
     assert eta_seconds(None, 0, 5.0) is None and eta_seconds(10.0, 0, 0.0) is None
