@@ -143,6 +143,15 @@ def _show_progress(quiet: bool):
     return show, live
 
 
+def _dashboard_hint(cluster) -> str:
+    """What the printed dashboard address lacks: a local cluster draws its graphs only with bokeh installed."""
+    import importlib.util
+
+    if cluster is None or importlib.util.find_spec("bokeh") is not None:
+        return ""
+    return " (its graphs need bokeh: pip install 'foldfarm[dashboard]')"
+
+
 def _drive(store, run_id: int, scheduler, workers, as_json: bool, quiet: bool, take_over: bool,
            new_shape: str | None = None, settings=None) -> None:
     import signal
@@ -158,7 +167,7 @@ def _drive(store, run_id: int, scheduler, workers, as_json: bool, quiet: bool, t
         if new_shape is not None:  # planned on a worker, which has the kernel loaded
             run_id = runner.create(store, new_shape, settings, max(1, sum(client.nthreads().values())), client)
         if not (quiet or as_json):
-            typer.echo(f"dashboard: {client.dashboard_link}", err=True)
+            typer.echo(f"dashboard: {client.dashboard_link}{_dashboard_hint(cluster)}", err=True)
             if new_shape is not None:
                 typer.echo(f"run {run_id}: {new_shape} planned in {store.display_url}", err=True)
         show, live = _show_progress(quiet or as_json)

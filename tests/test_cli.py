@@ -66,3 +66,15 @@ def test_bad_input_to_run_commands_is_one_line(tmp_path, args, needle):
     lines = out.stderr.strip().splitlines()
     assert len(lines) == 1 and lines[0].startswith("foldfarm: ") and needle in lines[0], out.stderr
     assert "hunter2" not in out.stderr and "Traceback" not in out.stderr
+
+
+def test_run_prints_the_local_dashboard_and_what_its_graphs_need(tmp_path):
+    import importlib.util
+
+    out = foldfarm("run", "2x3", "--workers", "1", "--store", f"sqlite:///{tmp_path / 'dash.sqlite'}")
+    assert out.returncode == 0, out.stderr
+    assert out.stdout.strip() == "60"  # OEIS A001415, 2x3
+    first = out.stderr.splitlines()[0]
+    assert first.startswith("dashboard: http://127.0.0.1:")
+    hint = "(its graphs need bokeh: pip install 'foldfarm[dashboard]')"
+    assert first.endswith(hint) == (importlib.util.find_spec("bokeh") is None), first
