@@ -125,10 +125,11 @@ def warm_worker() -> bool:
 class ReadyWorker(WorkerPlugin):
     """Loads the kernel on every worker as it starts; lets a closing worker exit at once.
 
-    Given to the local cluster's workers at construction (so the load
-    overlaps the planning) and registered with the scheduler by every
-    coordinator (so workers that join later, or that a nanny restarted
-    after a crash, load it too).  Registering it again is a no-op.
+    Given to the local cluster's workers at construction (a worker forked
+    from the fork server has the kernel already; one its nanny restarted
+    after a crash loads it before it registers) and registered with the
+    scheduler by every coordinator (so workers that join a cluster later
+    load it too).  Registering it again is a no-op.
     """
 
     name = "foldfarm-ready-worker"
