@@ -88,7 +88,7 @@ import numba
 import numpy as np
 
 from foldfarm.prefix import PrefixError, parse_prefix
-from foldfarm.shape import Shape, fast_order, neighbour_table, parse_shape, working_sides  # noqa: F401
+from foldfarm.shape import Shape, neighbour_table, parse_shape, working_sides
 
 #: Node expansions between two looks at the clock in a timed count.
 CLOCK_CHUNK = 1 << 20

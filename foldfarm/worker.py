@@ -111,7 +111,7 @@ def worker_address() -> str | None:
         return None
 
 
-def warm_worker() -> bool:
+def warm_worker() -> None:
     """Load every compiled function a worker calls (counting, planning, the checks' children); a no-op once loaded."""
     from foldfarm.kernel import expand_many, prepare, probe, warm
 
@@ -119,7 +119,6 @@ def warm_worker() -> bool:
     tables = prepare("2x3")
     expand_many(tables, [()], 2)
     probe(tables, (), 2)
-    return True
 
 
 class ReadyWorker(WorkerPlugin):
