@@ -78,6 +78,7 @@ the count of the task.
 
 from __future__ import annotations
 
+import itertools
 import math
 import threading
 import time
@@ -670,13 +671,12 @@ def children_of(tables: Tables, nodes: list[tuple[int, ...]], trusted: list[bool
     """
     found: dict[tuple[int, ...], list[int] | None] = {}
     out: list[list[int] | None] = [None] * len(nodes)
-    by_depth = sorted(range(len(nodes)), key=lambda i: len(nodes[i]))
-    at = 0
-    while at < len(by_depth):
-        depth = len(nodes[by_depth[at]])
+    def depth(i: int) -> int:
+        return len(nodes[i])
+
+    for _, level in itertools.groupby(sorted(range(len(nodes)), key=depth), key=depth):
         legal = []
-        while at < len(by_depth) and len(nodes[by_depth[at]]) == depth:
-            i, at = by_depth[at], at + 1
+        for i in level:
             node = nodes[i]
             if node and node[:-1] in found:
                 parent = found[node[:-1]]
