@@ -20,11 +20,13 @@ feeds them.
     the run's range is missing from the store (ids are handed out
     consecutively and never freed, so a gap is a deleted task).
 ``divisibility``
-    Every task count, and so the total, is a multiple of
-    :func:`symmetry_factor`: the number of cells (the rotations of a
-    folded stack) times 2 for three cells or more (turning the stack
-    over).  A flipped bit or an edited count rarely keeps that, and the
-    check names the task.
+    Every task count, and so the total, is a multiple of the run's own
+    :func:`symmetry_factor`: the number of foldings each leaf of the
+    search tree the run was planned on stands for (the rotations of a
+    folded stack, turning it over, and on tree 2 the map's own symmetries;
+    :mod:`foldfarm.symmetry`).  A run made before tree 2 existed is held
+    to tree 1's factor.  A flipped bit or an edited count rarely keeps
+    that, and the check names the task.
 ``audit``
     A random sample of done tasks (``--audit FRACTION`` of them, default
     the run's ``audit`` setting, 1 %, at least one) is counted again on a
@@ -39,7 +41,8 @@ feeds them.
     search tree, planned and split independently, must give the same total.
 ``certificate``
     ``sha256:`` + SHA-256 of the text ``foldfarm certificate 1 <side
-    order>\\n`` followed by one line ``<prefix> <state> <count>\\n`` per done
+    order>\\n`` (``foldfarm certificate 1 <side order> tree <tree>\\n`` for
+    a run on a tree other than 1) followed by one line ``<prefix> <state> <count>\\n`` per done
     or split task, sorted by prefix as a tuple of numbers.  Done counts
     and split partial counts together make the total, so the digest
     certifies it.  Two stores holding the same run give the same digest,
@@ -61,6 +64,7 @@ from dataclasses import dataclass, field
 
 from foldfarm.errors import UserError
 from foldfarm.prefix import PrefixError, Steps, first_overlap, parse_prefix, prefix_text
+from foldfarm.symmetry import LEGACY_TREE, reduction, tree_of
 
 #: Check names, in the order they are reported.
 CHECKS = ("total", "completeness", "divisibility", "audit", "published", "transpose", "certificate")
@@ -195,24 +199,24 @@ def total_check(scan: Scan, stored: int | None, finished: bool) -> dict:
     return outcome(True, summed, value=scan.total)
 
 
-def symmetry_factor(cells: int) -> int:
-    """The factor every count of a map of ``cells`` cells has, by symmetry.
+def symmetry_factor(sides: tuple[int, ...], tree: int) -> int:
+    """The factor every count of a run on tree ``tree`` of the map with working sides ``sides`` has.
 
-    ``cells`` rotations of a folded stack (top leaf moved to the bottom) are
-    distinct foldings, and for 3 cells or more turning the stack over pairs
-    the foldings with leaf 1 on top without a fixed point (proofs in
-    :mod:`foldfarm.kernel`, which counts one leaf per ``factor`` foldings).
+    Each leaf of the reduced tree stands for that many foldings: the
+    rotations of the folded stack, turning it over, and (on tree 2) the
+    map's own symmetries that act freely (:mod:`foldfarm.symmetry`; proofs
+    in :mod:`foldfarm.kernel`, which counts one leaf per ``factor`` foldings).
 
-    >>> [symmetry_factor(n) for n in (1, 2, 3, 24)]
-    [1, 2, 6, 48]
+    >>> [symmetry_factor(s, 1) for s in ((), (2,), (3,), (3, 8))], symmetry_factor((3, 8), 2)
+    ([1, 2, 6, 48], 96)
     """
-    return cells * (2 if cells >= 3 else 1)
+    return reduction(tuple(sides), tree).factor
 
 
-def divisibility_check(scan: Scan, cells: int) -> dict:
-    """The total and every task count are multiples of :func:`symmetry_factor`."""
-    factor = symmetry_factor(cells)
-    why = f"{cells} rotation{'s' if cells > 1 else ''}" + (" x 2 sides" if cells >= 3 else "")
+def divisibility_check(scan: Scan, sides: tuple[int, ...], tree: int) -> dict:
+    """The total and every task count are multiples of the run's :func:`symmetry_factor`."""
+    red = reduction(tuple(sides), tree)
+    factor, why = red.factor, f"{red.why}, tree {tree}"
     bad = [f"task {p} counts {c} = {factor} x {c // factor} + {c % factor}" for p, c in scan.not_multiple]
     if scan.total % factor:
         bad.insert(0, f"the total {scan.total} leaves {scan.total % factor} over")
@@ -248,16 +252,19 @@ def published_check(shape: str, total: int, finished: bool) -> dict:
     return outcome(True, f"{total} equals the published value ({named})", sources=sources)
 
 
-def certificate(side_order: str, entries: Iterable[tuple[Steps, str, int]]) -> str:
-    """Digest of a run's done and split tasks (see the module docstring for the exact text hashed).
+def certificate(side_order: str, entries: Iterable[tuple[Steps, str, int]], tree: int = LEGACY_TREE) -> str:
+    """Digest of a run's done and split tasks on tree ``tree`` (see the module docstring for the text hashed).
 
     >>> a = certificate("4x3", [((2,), "done", 24), ((1,), "split", 12)])
     >>> a == certificate("4x3", [((1,), "split", 12), ((2,), "done", 24)]), a.startswith("sha256:")
     (True, True)
     >>> a == certificate("4x3", [((2,), "done", 36), ((1,), "split", 12)])
     False
+    >>> a == certificate("4x3", [((2,), "done", 24), ((1,), "split", 12)], tree=2)
+    False
     """
-    digest = hashlib.sha256(f"foldfarm certificate 1 {side_order}\n".encode())
+    header = f"foldfarm certificate 1 {side_order}" + (f" tree {tree}" if tree != LEGACY_TREE else "")
+    digest = hashlib.sha256(f"{header}\n".encode())
     for steps, state, count in sorted(entries):
         digest.update(f"{prefix_text(steps)} {state} {count}\n".encode())
     return "sha256:" + digest.hexdigest()
@@ -428,23 +435,25 @@ def completeness_check(scan: Scan, kids: Kids, cells: int, gaps: list[tuple[int,
 class TreeChildren:
     """:data:`Kids` from the kernel for one map's tree, memoised, a batch at a time.
 
-    ``sides`` are the working sides of the map.  A node is expanded only
+    ``sides`` are the working sides of the map, ``tree`` the run's search
+    tree (:func:`foldfarm.symmetry.tree_of`).  A node is expanded only
     once it is known to be in the tree (a child of a node expanded before,
     here or earlier in the same batch), or after the kernel replayed it: the
     compiled search does not check its input.  ``fetch(nodes, trusted)``
     does the kernel's part (:func:`foldfarm.worker.children` for these
-    sides): by default in this process, or on a Dask worker (see
+    sides and tree): by default in this process, or on a Dask worker (see
     :func:`verify_run`), where asking for a whole walk's nodes at once saves
     a round trip a level.
     """
 
     BATCH = 4096
 
-    def __init__(self, sides: tuple[int, ...], fetch: Callable[[list[Steps], list[bool]], list] | None = None):
+    def __init__(self, sides: tuple[int, ...], tree: int,
+                 fetch: Callable[[list[Steps], list[bool]], list] | None = None):
         from foldfarm.worker import children
 
         self.cells = math.prod(sides)
-        self.fetch = fetch or (lambda nodes, trusted: children(sides, nodes, trusted))
+        self.fetch = fetch or (lambda nodes, trusted: children(sides, nodes, trusted, tree=tree))
         self.memo: dict[Steps, list[int] | None] = {}
 
     def __call__(self, nodes: list[Steps]) -> list[list[int] | None]:
@@ -548,15 +557,16 @@ def audit_outcome(audited: int, fraction: float, seed: int, mismatches: list[dic
                          f"(verify again): {_listed(errors)}", **extra)
 
 
-def _audit(store, sides: tuple[int, ...], sample: list, client, fraction: float, seed: int) -> dict:
-    """Count each sampled done task again on another worker; on a mismatch a third time."""
+def _audit(store, sides: tuple[int, ...], tree: int, sample: list, client, fraction: float, seed: int) -> dict:
+    """Count each sampled done task again (on the run's tree) on another worker; on a mismatch a third time."""
     from foldfarm.worker import work
 
     workers = sorted(client.scheduler_info()["workers"])
     if not workers:
         return outcome(None, "skipped: the cluster has no workers", audited=0, fraction=fraction, seed=seed)
     chosen = [pick_worker(workers, [row.worker], i) or workers[i % len(workers)] for i, row in enumerate(sample)]
-    futures = [client.submit(work, sides, [row.prefix], 0, 0, workers=[w], allow_other_workers=False, pure=False)
+    futures = [client.submit(work, sides, [row.prefix], 0, 0, tree=tree, workers=[w], allow_other_workers=False,
+                             pure=False)
                for row, w in zip(sample, chosen)]
     mismatches, errors = [], []
     for row, worker, future in zip(sample, chosen, futures):
@@ -573,12 +583,12 @@ def _audit(store, sides: tuple[int, ...], sample: list, client, fraction: float,
         third_worker = pick_worker(workers, [row.worker, by])
         if third_worker is not None:
             try:
-                third = client.submit(work, sides, [row.prefix], 0, 0, workers=[third_worker],
+                third = client.submit(work, sides, [row.prefix], 0, 0, tree=tree, workers=[third_worker],
                                       allow_other_workers=False, pure=False).result()[0]
             except Exception:  # that worker is gone too: count here instead
                 third = None
         if third is None:  # no third worker: this process counts it
-            third, third_worker = work(sides, [row.prefix], 0, 0)[0], None
+            third, third_worker = work(sides, [row.prefix], 0, 0, tree=tree)[0], None
         third_by = third["worker"] or third_worker or "the verifying process"
         store.record_audit(row.id, third["count"], nodes=third["nodes"], seconds=third["seconds"],
                            worker=third["worker"] or third_worker)
@@ -660,11 +670,11 @@ def _sides(side_order: str) -> tuple[int, ...]:
     return tuple(int(p) for p in side_order.split("x") if int(p) > 1)
 
 
-def _on_a_worker(client, sides: tuple[int, ...]) -> Callable[[list[Steps], list[bool]], list]:
+def _on_a_worker(client, sides: tuple[int, ...], tree: int) -> Callable[[list[Steps], list[bool]], list]:
     """A ``fetch`` for :class:`TreeChildren` that runs the kernel on a worker of ``client``."""
     from foldfarm.worker import children
 
-    return lambda nodes, trusted: client.submit(children, sides, nodes, trusted, pure=False).result()
+    return lambda nodes, trusted: client.submit(children, sides, nodes, trusted, tree=tree, pure=False).result()
 
 
 def verify_run(store, run_id: int, *, client=None, audit_fraction: float | None = None, transpose: bool = False,
@@ -683,12 +693,13 @@ def verify_run(store, run_id: int, *, client=None, audit_fraction: float | None 
     finished = run.state in FINISHED
     fraction = parse_fraction(run.settings.get("audit", DEFAULT_AUDIT) if audit_fraction is None else audit_fraction)
     sides = _sides(run.side_order)
+    tree = tree_of(run.settings)  # runs made before the map's symmetries were used: tree 1
     cells = math.prod(sides)
     positions = []
     if client is not None:
         positions = sample_positions(store.progress(run_id).tasks["done"], fraction, seed)
-    kids = TreeChildren(sides, None if client is None else _on_a_worker(client, sides))
-    scan = scan_tasks(store.check_rows(run_id), symmetry_factor(cells), positions)
+    kids = TreeChildren(sides, tree, None if client is None else _on_a_worker(client, sides, tree))
+    scan = scan_tasks(store.check_rows(run_id), symmetry_factor(sides, tree), positions)
     gaps = []
     if scan.first_id is not None:
         gaps = [(g.first, g.last) for g in store.task_id_gaps(scan.first_id, scan.last_id)
@@ -696,7 +707,7 @@ def verify_run(store, run_id: int, *, client=None, audit_fraction: float | None 
     checks = {
         "total": total_check(scan, run.total, finished),
         "completeness": completeness_check(scan, kids, cells, gaps),
-        "divisibility": divisibility_check(scan, cells),
+        "divisibility": divisibility_check(scan, sides, tree),
     }
     if fraction == 0:
         checks["audit"] = outcome(None, "skipped: audit fraction 0", audited=0, fraction=fraction, seed=seed)
@@ -706,7 +717,7 @@ def verify_run(store, run_id: int, *, client=None, audit_fraction: float | None 
         checks["audit"] = outcome(None, f"skipped: audit fraction {fraction:g} of "
                                         f"{scan.states['done']} done task(s)", audited=0, fraction=fraction, seed=seed)
     else:
-        checks["audit"] = _audit(store, sides, scan.sample, client, fraction, seed)
+        checks["audit"] = _audit(store, sides, tree, scan.sample, client, fraction, seed)
     checks["published"] = published_check(run.shape, scan.total, finished)
     previous = (run.checks or {}).get("transpose")
     if not finished:
@@ -715,7 +726,7 @@ def verify_run(store, run_id: int, *, client=None, audit_fraction: float | None 
         checks["transpose"] = _transpose(store, run, client if transpose else None, scan.total, previous)
     else:
         checks["transpose"] = outcome(None, "not asked (verify --transpose counts the map in another side order)")
-    digest = certificate(run.side_order, scan.entries)
+    digest = certificate(run.side_order, scan.entries, tree)
     checks["certificate"] = certificate_check(digest, run.certificate)
     if finished:
         store.set_verification(run_id, passed(checks), checks=checks,

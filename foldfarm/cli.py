@@ -85,6 +85,8 @@ def count_cmd(
                 "seconds": round(out.seconds, 6),
                 "nodes": out.nodes,
                 "side_order": "x".join(map(str, tables.sides)) or "1",
+                "tree": tables.tree,
+                "factor": tables.factor,
                 "kernel_load_seconds": round(load_seconds, 3),
             }
         )
@@ -277,12 +279,14 @@ def resume_cmd(
     quiet: bool = QuietOpt,
     take_over: bool = TakeOverOpt,
 ) -> None:
-    """Continue a stopped or crashed run where its store says it stands."""
+    """Continue a stopped or crashed run where its store says it stands, on the search tree it was planned on."""
+    from foldfarm.symmetry import tree_of
+
     run_id = _run_id(run)
     _head_start(scheduler, workers)
     opened = _open_store(store)
     try:
-        opened.get_run(run_id)
+        tree_of(opened.get_run(run_id).settings)  # a tree this version cannot search: say so before the cluster starts
         _drive(opened, run_id, scheduler, workers, as_json, quiet, take_over)
     finally:
         opened.close()

@@ -28,10 +28,12 @@ Search state (int64 arrays, one entry per leaf, index 0 the sentinel):
 ``mark[m]``
     scratch for intersecting the gap lists of several dimensions: equal to
     ``stamp + k`` while gap ``m`` has passed the first ``k`` walks of the
-    current node (see :func:`_gaps`); older values are below ``stamp``.
+    current node (see :func:`_gaps`), then, at a leaf that decides a
+    condition, to a stamp of its own on the leaves of the allowed arc
+    (:func:`_conditions`); older values are below ``stamp``.
 
-Three savings over the plain procedure
-======================================
+Savings over the plain procedure
+================================
 *Leaf 1 on top* (Lunnon 1971).  Crossing of creases is a property of the
 cyclic order of the leaves: four distinct points interleave on a line exactly
 when they interleave on the circle obtained by joining its ends.  So a
@@ -44,15 +46,89 @@ leaf 1 is always directly below ``0``, so the walk that would step onto ``0``
 steps straight to the gap after it, and the forbidden gap is never produced
 at all, where the 1971 procedure produces it and prunes the node afterwards.
 
-*Mirror* (stack reversal).  A folding read bottom-up is a folding (turn the
-folded map over).  Reverse a folding ``1, x2, ..., xn`` and rotate it so that
-leaf 1 is on top again: ``1, xn, ..., x2``.  This is an involution on the
-foldings with leaf 1 on top that reverses the relative order of any two
-leaves other than 1; for ``n >= 3`` it exchanges those with leaf 2 above
-leaf 3 and those with leaf 3 above leaf 2, so the two sets are equally large.
-With leaf 1 on top and only leaves 1, 2 placed, leaf 2 is directly below 1;
-"3 below 2" is the gap ``m = 2``.  We keep only that gap at depth 3 and
-multiply by 2.
+So the foldings with leaf 1 on top are the *cyclic orders* of the leaves
+that fold (read from leaf 1 down); call their set ``C``.  The other savings
+pick one member of each class of ``C`` under a group of symmetries and
+multiply by the size of the group.  Write ``[a, b, c]`` for "leaves ``a``,
+``b``, ``c`` come in this cyclic order reading down from ``a`` (wrapping
+round from the bottom to the top)"; with leaf 1 on top ``[1, b, c]`` is
+"``b`` above ``c``".
+
+*Turning the stack over* (``M``).  A folding read bottom-up is a folding
+(turn the folded map over); on ``C`` this is ``M``: reverse, then rotate leaf
+1 back to the top, ``1, x2, ..., xn -> 1, xn, ..., x2``.  ``M`` reverses the
+cyclic order of every three leaves, so for ``n >= 3`` it has no fixed point
+and exchanges the cyclic orders with ``[1, 2, 3]`` and those without: keeping
+``[1, 2, 3]`` ("leaf 2 above leaf 3") and multiplying by 2 is exact.
+
+*The map's own symmetries.*  A symmetry ``g`` of the box (reflect a side,
+``x_i -> p_i + 1 - x_i``; exchange two equal sides) maps creases to creases
+of one dimension, and two creases of one class to two creases of one class
+(a reflection keeps or exchanges the two parity classes of its dimension;
+an exchange of sides keeps coordinates, so parity).  Relabelling every
+leaf ``x`` of a folding by ``g(x)`` therefore gives a folding, and on cyclic
+orders this action commutes with ``M``.  Two facts decide when a group of
+such relabellings, with or without ``M``, acts *freely* on ``C`` (no member
+but the identity fixes a cyclic order), which makes every class exactly as
+large as the group:
+
+(F1) if ``g != 1`` fixes some leaf, ``g`` fixes no cyclic order: if it
+fixed ``s``, it would move every leaf the same number of places round ``s``,
+and a leaf it keeps shows that number is 0, so ``g`` would keep every leaf.
+
+(F2) if ``gM`` fixes a cyclic order ``s``, then ``g`` acts on the places of
+``s`` as a reflection of the circle: ``g`` has order 2 and keeps at most two
+leaves (a reflection of ``n`` points on a circle keeps 0, 1 or 2 of them).
+So if ``g`` is not an involution, or keeps 3 leaves or more, ``gM`` fixes
+no cyclic order.
+
+A *condition* ``[a, b, c]`` is kept by every relabelling that keeps its
+three leaves, reversed by one that exchanges two of them and keeps the third,
+and reversed by ``M``.  Once its largest leaf ``c`` is placed it is decided
+for the whole subtree, because inserting later leaves never changes the
+cyclic order of placed ones; so a condition prunes when ``c`` is placed:
+``c`` must go directly below a leaf of the arc from ``b`` down to ``a``
+(:func:`_conditions`).  The conditions of each tree are chosen by
+:mod:`foldfarm.symmetry` (largest leaf as small as it can be); the proofs:
+
+* *Tree 1*: ``[1, 2, 3]``, the group ``{1, M}``, factor ``2n`` (``n >= 3``).
+
+* *Tree 2, an involution and ``M``.*  Let ``g`` be a reflection of an odd
+  side ``p >= 3`` or the exchange of two equal sides, keeping at least 3
+  leaves (``p`` odd: the middle layer, ``n / p`` leaves; an exchange: the
+  diagonal, ``n / p``).  By (F1) and (F2) the group ``{1, g, M, gM}`` acts
+  freely on ``C``.  Take ``[t, a, g(a)]`` with ``t`` kept by ``g`` and ``a``
+  not (reversed by ``g`` and by ``M``) and ``[u, v, w]`` with all three kept
+  by ``g`` (kept by ``g``, reversed by ``M``).  The two yes/no answers of a
+  cyclic order ``s`` change under ``g``, ``M``, ``gM`` as (flip, keep),
+  (flip, flip), (keep, flip): the four members of the class of ``s`` answer
+  the four different ways, so exactly one answers (yes, yes).  Factor
+  ``4n``.  (3x8: ``[1, 2, 3]`` and ``[2, 5, 8]``, reflecting the side of 3;
+  4x4: ``[1, 2, 5]`` and ``[1, 6, 11]``, the diagonal.)
+
+* *Tree 2, a square of odd sides* ``q >= 3`` (5x5; in more dimensions two
+  equal odd sides).  Its 8 symmetries ``K`` (turns and reflections in the
+  plane of the square) all keep the middle cell ``c`` of the square (the
+  first one, in more dimensions), so by (F1) ``K`` acts freely on ``C``
+  (``M`` is not used: the group of ``K`` and ``M`` holds the half turn
+  with ``M``, and the half turn keeps one leaf only, so (F2) does not apply;
+  on 3x3 it does keep 24 of the 152 cyclic orders, as the oracle shows).  Let ``O`` be the four neighbours of ``c``
+  in the square; ``K`` permutes them transitively, and the members of ``K``
+  keeping one of them, ``o``, are 1 and a reflection ``r``.  For a cyclic
+  order ``s`` let ``f(s)`` be the first member of ``O`` met reading down
+  from ``c``; relabelling does not change the direction of reading, so
+  ``f(ks) = k(f(s))`` for ``k`` in ``K``.  In the class ``Ks`` (8 cyclic
+  orders) ``f(ks) = o`` exactly for the ``k`` with ``k(f(s)) = o``: a pair
+  ``{k0 s, r k0 s}``; of those, exactly one has ``[t, a, r(a)]`` (``t`` kept
+  by ``r``, ``a`` not), which ``r`` reverses.  "``f(s) = o``" is the three
+  conditions ``[c, o, x]`` for the other ``x`` in ``O``.  Factor ``8n``.
+  (5x5: ``o = 8``, ``[8, 12, 13]``, ``[13, 8, 14]``, ``[13, 8, 18]`` and
+  ``[2, 3, 4]``.)
+
+Maps with no symmetry of these kinds (2xN, 2x2, 4x6, strips) keep tree 1's
+reduction on tree 2.  ``tests/test_kernel.py``
+checks every reduction against :func:`count_plain` and the brute-force
+oracle (one folding per class, every class as large as the group).
 
 *Last leaf in bulk*.  The children of a node at depth ``n - 1`` are the
 foldings themselves, one per allowed gap of leaf ``n``; their number is the
@@ -60,9 +136,8 @@ length of the filtered gap list, so we add it instead of placing leaf ``n``
 and descending.  Nodes at depth ``n`` are therefore never visited, and a
 prefix never places leaf ``n``.
 
-Together, ``count = n * (2 if n >= 3 else 1) * (leaves of the reduced
-tree)``; :attr:`Tables.factor` holds the multiplier.  ``tests/test_kernel.py``
-checks each saving against :func:`count_plain`, a transcription without them.
+Together, ``count = factor * (leaves of the reduced tree)``;
+:attr:`Tables.factor` holds the factor of the tree searched.
 
 Tasks and budgets
 =================
@@ -90,6 +165,7 @@ import numpy as np
 
 from foldfarm.prefix import PrefixError, parse_prefix
 from foldfarm.shape import Shape, neighbour_table, parse_shape, working_sides
+from foldfarm.symmetry import CURRENT_TREE, Reduction, describe, reduction
 
 #: Node expansions between two looks at the clock in a timed count.
 CLOCK_CHUNK = 1 << 20
@@ -100,39 +176,63 @@ UNLIMITED = np.iinfo(np.int64).max
 
 @dataclass(frozen=True)
 class Tables:
-    """Everything constant during one map's search."""
+    """Everything constant during one map's search on one reduced tree."""
 
     sides: tuple[int, ...]
     n: int
     table: np.ndarray = field(repr=False)
-    #: search only the half with leaf 2 above leaf 3 (needs n >= 3)
-    mirror: bool = False
+    #: the conditions leaf ``l`` decides are ``arcs[first[l]:first[l + 1]]``; each row ``(a, b)``
+    #: says leaf ``l`` goes directly below a leaf of the arc from ``b`` down to ``a`` (``a`` excluded)
+    first: np.ndarray = field(repr=False)
+    arcs: np.ndarray = field(repr=False)
+    reduction: Reduction = field(repr=False)
 
     @property
     def factor(self) -> int:
-        """Foldings per leaf of the reduced tree: n rotations, times 2 mirrored."""
-        return self.n * (2 if self.mirror else 1)
+        """Foldings per leaf of the reduced tree (:attr:`foldfarm.symmetry.Reduction.factor`)."""
+        return self.reduction.factor
+
+    @property
+    def tree(self) -> int | None:
+        """The tree's identifier (:mod:`foldfarm.symmetry`); None for a test-made reduction."""
+        return self.reduction.tree
 
 
 @lru_cache(maxsize=32)
-def tables_for(sides: tuple[int, ...], mirror: bool = True) -> Tables:
-    """Build (and memoise) the kernel tables for working sides ``sides``.
-
-    ``mirror=False`` searches both halves (tests use it to check the saving).
-    """
-    n = math.prod(sides)
+def _table(sides: tuple[int, ...]) -> np.ndarray:
     table = neighbour_table(sides)
     # Leaf 1 stays on top: the walk steps over the sentinel (see module doc).
     table[:, :, 0] = table[:, :, 1]
     table.setflags(write=False)
-    return Tables(sides=sides, n=n, table=table, mirror=mirror and n >= 3)
+    return table
 
 
-def prepare(shape: Shape | str, order: str = "fast") -> Tables:
-    """Tables for ``shape`` searched with its sides in ``order``."""
+@lru_cache(maxsize=64)
+def tables_of(red: Reduction) -> Tables:
+    """Build (and memoise) the kernel tables that search the reduced tree ``red``."""
+    n = math.prod(red.sides)
+    first = np.zeros(n + 2, np.int64)
+    arcs = np.zeros((len(red.conditions), 2), np.int64)
+    for k, (a, b, c) in enumerate(sorted(red.conditions, key=lambda t: t[2])):
+        if not (1 <= a <= n and 1 <= b <= n and max(a, b) < c <= n and a != b):
+            raise ValueError(f"{(a, b, c)} is no condition of a {n}-cell map: three leaves, the largest last")
+        arcs[k] = (a, b)
+        first[c + 1:] += 1
+    for array in (first, arcs):
+        array.setflags(write=False)
+    return Tables(sides=red.sides, n=n, table=_table(red.sides), first=first, arcs=arcs, reduction=red)
+
+
+def tables_for(sides: tuple[int, ...], tree: int = CURRENT_TREE) -> Tables:
+    """Tables that search the map with working sides ``sides`` on tree ``tree`` (:mod:`foldfarm.symmetry`)."""
+    return tables_of(reduction(tuple(sides), tree))
+
+
+def prepare(shape: Shape | str, order: str = "fast", tree: int = CURRENT_TREE) -> Tables:
+    """Tables for ``shape`` searched with its sides in ``order``, on tree ``tree``."""
     if isinstance(shape, str):
         shape = parse_shape(shape)
-    return tables_for(working_sides(shape, order))
+    return tables_for(working_sides(shape, order), tree)
 
 
 # --------------------------------------------------------------------------
@@ -156,14 +256,28 @@ def _remove(above, below, l):
 
 
 @numba.njit(cache=True, nogil=True, inline="always")
-def _mirror_half(gap, g0, g):
-    """Keep only gap 2 in ``gap[g0:g]`` (leaf 3 below leaf 2, see Mirror); return the new end."""
-    keep = g0
-    for j in range(g0, g):
-        if gap[j] == 2:
-            gap[keep] = 2
-            keep += 1
-    return keep
+def _conditions(below, mark, stamp, gap, g0, g, first, arcs, l):
+    """Keep in ``gap[g0:g]`` the gaps that meet the conditions leaf ``l`` decides; return ``(end, stamp)``.
+
+    Each condition ``(a, b)`` marks the leaves from ``b`` down the cycle to
+    ``a`` (excluded) with a fresh stamp; a gap is kept when it is marked.
+    ``stamp`` must be past every mark already made; the stamp returned is
+    the last one used.
+    """
+    for k in range(first[l], first[l + 1]):
+        a = arcs[k, 0]
+        m = arcs[k, 1]
+        stamp += 1
+        while m != a:
+            mark[m] = stamp
+            m = below[m]
+        keep = g0
+        for j in range(g0, g):
+            if mark[gap[j]] == stamp:
+                gap[keep] = gap[j]
+                keep += 1
+        g = keep
+    return g, stamp
 
 
 @numba.njit(cache=True, nogil=True, inline="always")
@@ -222,7 +336,7 @@ def _gaps(table, l, below, mark, stamp, gap, g0, emit):
 
 
 @numba.njit(cache=True, nogil=True)
-def _search(table, n, above, below, mark, gap, gapter, level, floor, budget, mirror, stamp):
+def _search(table, n, above, below, mark, gap, gapter, level, floor, budget, first, arcs, stamp):
     """Search below the placed leaves ``1..floor-1``, resuming at ``level``.
 
     Returns ``(leaves, nodes, level, stamp)``: reduced-tree leaves counted,
@@ -239,15 +353,14 @@ def _search(table, n, above, below, mark, gap, gapter, level, floor, budget, mir
             return leaves, nodes, l, stamp
         nodes += 1
         g0 = g
-        if l == n and l != 3:
+        if l == n and first[l] == first[l + 1]:
             leaves += _gaps(table, l, below, mark, stamp, gap, g0, False) - g0
             stamp += dims
             g = g0
         else:
             g = _gaps(table, l, below, mark, stamp, gap, g0, True)
             stamp += dims
-            if mirror and l == 3:
-                g = _mirror_half(gap, g0, g)
+            g, stamp = _conditions(below, mark, stamp, gap, g0, g, first, arcs, l)
             if l == n:
                 leaves += g - g0
                 g = g0
@@ -263,12 +376,13 @@ def _search(table, n, above, below, mark, gap, gapter, level, floor, budget, mir
 
 
 @numba.njit(cache=True, nogil=True)
-def _replay(table, n, above, below, mark, gap, gapter, steps, mirror):
+def _replay(table, n, above, below, mark, gap, gapter, steps, first, arcs):
     """Place leaf 1, then leaves ``2..len(steps)+1`` below ``steps``.
 
     Returns ``(bad, stamp)``: ``bad`` is 0 on success, else the 1-based
-    index of the first illegal step.  The placed levels are left with empty
-    sibling lists (``gapter`` all 0).
+    index of the first illegal step, negated when the step is a gap that
+    only the tree's conditions rule out.  The placed levels are left with
+    empty sibling lists (``gapter`` all 0).
     """
     dims = table.shape[1]
     stamp = np.int64(0)
@@ -288,17 +402,22 @@ def _replay(table, n, above, below, mark, gap, gapter, steps, mirror):
         for k in range(g):
             if gap[k] == want:
                 ok = True
-        if mirror and l == 3 and want != 2:
-            ok = False
         if not ok:
             return j + 1, stamp
+        g, stamp = _conditions(below, mark, stamp, gap, 0, g, first, arcs, l)
+        ok = False
+        for k in range(g):
+            if gap[k] == want:
+                ok = True
+        if not ok:
+            return -(j + 1), stamp
         _insert(above, below, l, want)
         gapter[l] = 0
     return 0, stamp
 
 
 @numba.njit(cache=True, nogil=True)
-def _probe(table, n, above, below, mark, gap, level, mirror, stamp, probes, seed):
+def _probe(table, n, above, below, mark, gap, level, first, arcs, stamp, probes, seed):
     """Knuth's random probes (1975) below the placed leaves ``1..level-1``.
 
     Each probe walks from the current node to a dead end or a last-leaf
@@ -323,8 +442,7 @@ def _probe(table, n, above, below, mark, gap, level, mirror, stamp, probes, seed
         while True:
             g = _gaps(table, l, below, mark, stamp, gap, 0, True)
             stamp += dims
-            if mirror and l == 3:
-                g = _mirror_half(gap, 0, g)
+            g, stamp = _conditions(below, mark, stamp, gap, 0, g, first, arcs, l)
             if l == n:
                 leaves = weight * g
                 break
@@ -344,7 +462,7 @@ def _probe(table, n, above, below, mark, gap, level, mirror, stamp, probes, seed
 
 
 @numba.njit(cache=True, nogil=True)
-def _expand(table, n, above, below, mark, gap, gapter, steps, mirror, probes, seed):
+def _expand(table, n, above, below, mark, gap, gapter, steps, first, arcs, probes, seed):
     """Children of the node ``steps`` and a probe estimate of each one's nodes.
 
     Returns ``(children, estimates)``: the gaps of the next leaf, and for each
@@ -352,19 +470,18 @@ def _expand(table, n, above, below, mark, gap, gapter, steps, mirror, probes, se
     The node must be legal and must not be a last-leaf node.
     """
     dims = table.shape[1]
-    bad, stamp = _replay(table, n, above, below, mark, gap, gapter, steps, mirror)
+    bad, stamp = _replay(table, n, above, below, mark, gap, gapter, steps, first, arcs)
     l = steps.shape[0] + 2
     g = _gaps(table, l, below, mark, stamp, gap, 0, True)
     stamp += dims
-    if mirror and l == 3:
-        g = _mirror_half(gap, 0, g)
+    g, stamp = _conditions(below, mark, stamp, gap, 0, g, first, arcs, l)
     kids = gap[:g].copy()
     k = g
     sizes = np.ones(k, np.float64)
     if probes > 0 and k > 1:  # an only child needs no estimate: it is the whole subtree
         for j in range(k):
             _insert(above, below, l, kids[j])
-            s_nodes, _, _, _, stamp = _probe(table, n, above, below, mark, gap, l + 1, mirror,
+            s_nodes, _, _, _, stamp = _probe(table, n, above, below, mark, gap, l + 1, first, arcs,
                                              stamp, probes, seed + j)
             sizes[j] = s_nodes / probes
             _remove(above, below, l)
@@ -382,7 +499,7 @@ def _node_seed(steps, seed):
 
 
 @numba.njit(cache=True, nogil=True)
-def _expand_many(table, n, above, below, mark, gap, gapter, flat, offsets, mirror, probes, seed):
+def _expand_many(table, n, above, below, mark, gap, gapter, flat, offsets, first, arcs, probes, seed):
     """:func:`_expand` for many nodes: node ``j`` has steps ``flat[offsets[j]:offsets[j+1]]``.
 
     Each node's probes are seeded by :func:`_node_seed`, so a node's estimate
@@ -397,7 +514,7 @@ def _expand_many(table, n, above, below, mark, gap, gapter, flat, offsets, mirro
     at = 0
     for j in range(nodes):
         steps = flat[offsets[j]:offsets[j + 1]]
-        k, s = _expand(table, n, above, below, mark, gap, gapter, steps, mirror, probes,
+        k, s = _expand(table, n, above, below, mark, gap, gapter, steps, first, arcs, probes,
                        _node_seed(steps, seed))
         counts[j] = k.shape[0]
         kids[at:at + k.shape[0]] = k
@@ -548,12 +665,15 @@ def _placed(tables: Tables, steps: tuple[int, ...]) -> tuple[_State, int]:
             )
     state = _scratch(n)
     bad, stamp = _replay(tables.table, n, state.above, state.below, state.mark, state.gap,
-                         state.gapter, np.asarray(steps, np.int64), tables.mirror)
+                         state.gapter, np.asarray(steps, np.int64), tables.first, tables.arcs)
     if bad:
-        leaf = bad + 1
-        why = ("the mirror half (leaf 3 above leaf 2) is counted by symmetry"
-               if tables.mirror and leaf == 3 else "a crease would cross another")
-        raise PrefixError(f"step {bad} puts leaf {leaf} below leaf {steps[bad - 1]}, which is illegal: {why}")
+        step = abs(bad)
+        leaf = step + 1
+        why = "a crease would cross another"
+        if bad < 0:
+            rules = [describe(t) for t in tables.reduction.conditions if t[2] == leaf]
+            why = f"this tree keeps only {' and '.join(rules)} (the rest is counted by symmetry)"
+        raise PrefixError(f"step {step} puts leaf {leaf} below leaf {steps[step - 1]}, which is illegal: {why}")
     return state, stamp
 
 
@@ -594,7 +714,7 @@ def count_below(tables: Tables, steps: tuple[int, ...] = (), budget: int | None 
         chunk = left if deadline is None else min(left, CLOCK_CHUNK)
         got, used, level, stamp = _search(tables.table, n, state.above, state.below, state.mark,
                                           state.gap, state.gapter, level, floor, chunk,
-                                          tables.mirror, stamp)
+                                          tables.first, tables.arcs, stamp)
         leaves += int(got)
         nodes += int(used)
         left -= int(used)
@@ -623,7 +743,7 @@ def expand(tables: Tables, steps: tuple[int, ...], probes: int = 0,
         raise PrefixError(f"a node placing {len(steps) + 1} leaves of {tables.n} has no children to split into")
     state = _scratch(tables.n)
     kids, sizes = _expand(tables.table, tables.n, state.above, state.below, state.mark, state.gap,
-                          state.gapter, np.asarray(steps, np.int64), tables.mirror, probes, seed)
+                          state.gapter, np.asarray(steps, np.int64), tables.first, tables.arcs, probes, seed)
     return kids.tolist(), sizes.tolist()
 
 
@@ -641,8 +761,8 @@ def expand_many(tables: Tables, nodes: list[tuple[int, ...]], probes: int,
     flat = np.fromiter((m for s in nodes for m in s), np.int64, int(offsets[-1]))
     state = _scratch(tables.n)
     counts, kids, sizes = _expand_many(tables.table, tables.n, state.above, state.below, state.mark,
-                                       state.gap, state.gapter, flat, offsets, tables.mirror, probes,
-                                       seed)
+                                       state.gap, state.gapter, flat, offsets, tables.first, tables.arcs,
+                                       probes, seed)
     out = []
     at = 0
     kids_l, sizes_l = kids.tolist(), sizes.tolist()
@@ -706,17 +826,17 @@ def probe(tables: Tables, steps: tuple[int, ...], probes: int, seed: int = 0) ->
         return float(probes), float(probes), float(probes), float(probes)
     state, stamp = _placed(tables, steps)
     a, b, c, d, _ = _probe(tables.table, tables.n, state.above, state.below, state.mark, state.gap,
-                           len(steps) + 2, tables.mirror, stamp, probes, seed)
+                           len(steps) + 2, tables.first, tables.arcs, stamp, probes, seed)
     return a, b, c, d
 
 
-def count(shape: Shape | str, order: str = "fast") -> int:
-    """Exact number of foldings of ``shape`` (e.g. ``"3x5"``), on one core.
+def count(shape: Shape | str, order: str = "fast", tree: int = CURRENT_TREE) -> int:
+    """Exact number of foldings of ``shape`` (e.g. ``"3x5"``), on one core, searching tree ``tree``.
 
-    >>> count("2x3")
-    60
+    >>> count("2x3"), count("3x3"), count("3x3", tree=1)
+    (60, 1368, 1368)
     """
-    return count_below(prepare(shape, order)).count
+    return count_below(prepare(shape, order, tree)).count
 
 
 def count_plain(sides: tuple[int, ...], top_fixed: bool = False) -> int:

@@ -21,13 +21,14 @@ from datetime import datetime
 from typing import IO
 
 from foldfarm.store.queries import AuditRecord, TaskRecord
+from foldfarm.symmetry import LEGACY_TREE
 
 #: Largest integer every JSON reader keeps exactly (doubles have 53 bits).
 SAFE_INT = 2**53 - 1
 #: Format tag of an export document.
 EXPORT_FORMAT = "foldfarm-export-1"
 #: Columns of the run table of a CSV export.
-RUN_COLUMNS = ("run", "shape", "side_order", "state", "created_at", "finished_at", "total", "counted", "tasks",
+RUN_COLUMNS = ("run", "shape", "side_order", "tree", "state", "created_at", "finished_at", "total", "counted", "tasks",
                "done", "split", "pending", "running", "failed", "nodes", "core_seconds", "verification",
                "certificate", *(f"check_{name}" for name in
                                 ("total", "completeness", "divisibility", "audit", "published", "transpose",
@@ -86,6 +87,7 @@ def run_detail(run, progress, audits: tuple[int, int], lease=None) -> dict:
         "run": run.id,
         "shape": run.shape,
         "side_order": run.side_order,
+        "tree": run.settings.get("tree", LEGACY_TREE),  # the search tree it was planned on (foldfarm.symmetry)
         "state": run.state,
         "created_at": when(run.created_at),
         "finished_at": when(run.finished_at),
@@ -124,7 +126,7 @@ def check_lines(checks: dict | None) -> list[str]:
 def detail_lines(d: dict, now: datetime | None = None) -> list[str]:
     """The text of ``foldfarm status RUN``."""
     t = d["tasks"]
-    lines = [f"run {d['run']}: {d['shape']} (searched as {d['side_order']}), {d['state']}",
+    lines = [f"run {d['run']}: {d['shape']} (searched as {d['side_order']} on tree {d['tree']}), {d['state']}",
              f"  created {d['created_at']}" + (f", finished {d['finished_at']}" if d["finished_at"] else "")]
     share = f" ({100 * d['closed'] / d['known']:.1f}% of the tasks known so far)" if d["known"] else ""
     lines.append(f"  tasks: {t.get('done', 0):,} done, {t.get('split', 0):,} split, {t.get('pending', 0):,} pending, "

@@ -51,6 +51,7 @@ from dataclasses import asdict, dataclass, field
 from typing import Any, Callable
 
 from foldfarm.errors import UserError
+from foldfarm.symmetry import CURRENT_TREE, tree_of
 
 #: Seconds without a heartbeat after which a lease may be taken over.
 LEASE_TTL = 60.0
@@ -337,22 +338,28 @@ def take_lease(store, run_id: int, holder: str, force: bool = False) -> None:
             raise
 
 
-def create(store, shape_text: str, settings: Settings, threads: int, client=None) -> int:
-    """Create a run of ``shape_text`` with its plan (made on a worker of ``client`` if given); return its id."""
+def create(store, shape_text: str, settings: Settings, threads: int, client=None, *,
+           tree: int = CURRENT_TREE) -> int:
+    """Create a run of ``shape_text`` with its plan (made on a worker of ``client`` if given); return its id.
+
+    The run is planned on search tree ``tree`` (:mod:`foldfarm.symmetry`),
+    recorded with its settings as ``"tree"``: every later count, split and
+    check of the run uses that tree.
+    """
     from foldfarm.shape import parse_shape, working_sides
 
     shape = parse_shape(shape_text)
     sides = working_sides(shape, settings.order)
     settings = Settings.from_dict({**settings.to_dict(), "tasks": target_tasks(settings, threads)})
-    prefixes, nodes = planned(sides, settings, client)
+    prefixes, nodes = planned(sides, settings, tree, client)
     run_id = store.create_run(shape.text, "x".join(map(str, sides)) or "1",
-                              {**settings.to_dict(), "estimated_nodes": nodes})
+                              {**settings.to_dict(), "tree": tree, "estimated_nodes": nodes})
     store.add_tasks(run_id, prefixes)  # one transaction; if we die before it, resume plans again
     return run_id
 
 
-def planned(sides: tuple[int, ...], settings: Settings, client=None) -> tuple[list[str], float]:
-    """The deterministic plan of a run (prefix texts) and a quick estimate of its search nodes (for ETAs).
+def planned(sides: tuple[int, ...], settings: Settings, tree: int, client=None) -> tuple[list[str], float]:
+    """The deterministic plan of a run on tree ``tree`` (prefix texts) and a quick estimate of its search nodes.
 
     Made on a worker of ``client`` when there is one, where the kernel is
     loaded already (this process then never loads it), else here.
@@ -361,8 +368,8 @@ def planned(sides: tuple[int, ...], settings: Settings, client=None) -> tuple[li
 
     args = (sides, settings.tasks, settings.probes, settings.seed, ETA_PROBES)
     if client is None:
-        return plan_tasks(*args)
-    return client.submit(plan_tasks, *args, pure=False).result()
+        return plan_tasks(*args, tree=tree)
+    return client.submit(plan_tasks, *args, tree=tree, pure=False).result()
 
 
 def drive(store, client, run_id: int, *, holder: str | None = None, take_over: bool = False,
@@ -380,12 +387,13 @@ def drive(store, client, run_id: int, *, holder: str | None = None, take_over: b
     if run.state in ("done", "verified", "suspect"):
         return finish(store, run_id, started)
     settings = Settings.from_dict(run.settings)
+    tree = tree_of(run.settings)  # a run made before the map's symmetries were used continues on tree 1
     sides = tuple(int(p) for p in run.side_order.split("x") if int(p) > 1)
     take_lease(store, run_id, holder, force=take_over)
     try:
         client.register_plugin(ReadyWorker())  # workers load the kernel, now and when they join
         if needs_plan(run.state, sum(store.progress(run_id).tasks.values())):
-            store.add_tasks(run_id, planned(sides, settings, client)[0])
+            store.add_tasks(run_id, planned(sides, settings, tree, client)[0])
         store.reset_running(run_id, failed=True)
         if run.state != "running":
             store.set_run_state(run_id, "running")
@@ -405,7 +413,7 @@ def drive(store, client, run_id: int, *, holder: str | None = None, take_over: b
             keys = [f"foldfarm-{run_id}-{b[0][0]}-{b[0][2]}" for b in bundles]
             futs = client.map(work, [sides] * len(bundles), [[p for _, p, _ in b] for b in bundles],
                               [settings.task_nodes] * len(bundles), [settings.task_seconds] * len(bundles),
-                              pure=False, key=keys)
+                              tree=tree, pure=False, key=keys)
             for fut, key, bundle in zip(futs, keys, bundles):
                 futures[fut] = key
                 dispatch.submitted(key, bundle)

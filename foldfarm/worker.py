@@ -48,9 +48,12 @@ DASK_SETTINGS = {
 }
 
 
-def work(sides: tuple[int, ...], prefixes: list[str], task_nodes: int, task_seconds: float) -> list[dict]:
-    """Count the subtrees below ``prefixes`` of the map with working sides ``sides``.
+def work(sides: tuple[int, ...], prefixes: list[str], task_nodes: int, task_seconds: float, *,
+         tree: int) -> list[dict]:
+    """Count the subtrees below ``prefixes`` of the map with working sides ``sides``, searched on tree ``tree``.
 
+    ``tree`` is the run's (:func:`foldfarm.symmetry.tree_of`): a prefix names
+    a subtree of one tree only, so it has no default.
     Runs on a Dask worker; each prefix is one task with its own budget
     (``task_nodes`` search nodes and ``task_seconds`` seconds, 0 for no
     bound).  Returns one plain dict per prefix: ``count`` (foldings),
@@ -60,7 +63,7 @@ def work(sides: tuple[int, ...], prefixes: list[str], task_nodes: int, task_seco
     from foldfarm.kernel import count_below, tables_for
     from foldfarm.prefix import parse_prefix, prefix_text
 
-    tables = tables_for(tuple(sides))
+    tables = tables_for(tuple(sides), tree)
     address = worker_address()
     results = []
     for prefix in prefixes:
@@ -77,8 +80,8 @@ def work(sides: tuple[int, ...], prefixes: list[str], task_nodes: int, task_seco
 
 
 def plan_tasks(sides: tuple[int, ...], target: int, probes: int, seed: int,
-               eta_probes: int) -> tuple[list[str], float]:
-    """The planner's prefixes (texts) for the map with working sides ``sides``, and its search size.
+               eta_probes: int, *, tree: int) -> tuple[list[str], float]:
+    """The planner's prefixes (texts) for the map with working sides ``sides`` on tree ``tree``, and its search size.
 
     The size is a quick Knuth estimate of the nodes in the whole search
     tree (``eta_probes`` probes; 0 for a single cell), for progress ETAs.
@@ -89,16 +92,17 @@ def plan_tasks(sides: tuple[int, ...], target: int, probes: int, seed: int,
     from foldfarm.plan import plan
     from foldfarm.prefix import prefix_text
 
-    tables = tables_for(tuple(sides))
+    tables = tables_for(tuple(sides), tree)
     nodes = estimate(tables, eta_probes, seed).nodes if tables.n > 1 else 0.0
     return [prefix_text(p) for p in plan(tables, target, probes, seed)], nodes
 
 
-def children(sides: tuple[int, ...], nodes: list[tuple[int, ...]], trusted: list[bool]) -> list[list[int] | None]:
-    """:func:`foldfarm.kernel.children_of` for the map with working sides ``sides`` (what the checks ask)."""
+def children(sides: tuple[int, ...], nodes: list[tuple[int, ...]], trusted: list[bool], *,
+             tree: int) -> list[list[int] | None]:
+    """:func:`foldfarm.kernel.children_of` for the map with working sides ``sides`` on tree ``tree`` (what the checks ask)."""
     from foldfarm.kernel import children_of, tables_for
 
-    return children_of(tables_for(tuple(sides)), nodes, trusted)
+    return children_of(tables_for(tuple(sides), tree), nodes, trusted)
 
 
 def worker_address() -> str | None:

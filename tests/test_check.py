@@ -8,11 +8,13 @@ from __future__ import annotations
 
 import itertools
 import math
+import subprocess
+import sys
 
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from local_driver import HERE, count_here
+from local_driver import HERE, count_here, count_pending
 from sqlalchemy import delete, select, update
 
 from foldfarm import check
@@ -20,35 +22,44 @@ from foldfarm import run as runner
 from foldfarm.errors import UserError
 from foldfarm.kernel import count_below, expand, prepare, tables_for
 from foldfarm.plan import plan
-from foldfarm.prefix import parse_prefix, prefix_text
+from foldfarm.prefix import PrefixError, parse_prefix, prefix_text
 from foldfarm.published import published, table
 from foldfarm.shape import parse_shape
 from foldfarm.store import CheckRow, Store, StoreError
-from foldfarm.store.models import Audit, Task
+from foldfarm.store.models import Audit, Run, Task
+from foldfarm.symmetry import LEGACY_TREE, TREES, reduction
 from foldfarm.worker import ReadyWorker
 
 SHAPE = "3x4"
 SHAPE_COUNT = published(SHAPE)[0].count  # OEIS A001416
 SHAPE_SOURCE = published(SHAPE)[0].source
+#: Foldings per leaf of 3x4's tree 2: 12 rotations x 2 (turning over) x 2 (reflecting the side of 3).
+FACTOR = reduction((3, 4)).factor
 
 
 def kids_of(tables):
-    return check.TreeChildren(tables.sides)
+    return check.TreeChildren(tables.sides, tables.tree)
 
 
 # -- plain functions --------------------------------------------------------------------------
 
 
-@pytest.mark.parametrize("shape", ["1x1", "2x1", "2x2", "2x3", "3x4", "2x2x2", "1x7"])
-def test_symmetry_factor_is_the_kernels_multiplier(shape):
-    tables = prepare(shape)
-    assert check.symmetry_factor(tables.n) == tables.factor
+@pytest.mark.parametrize("shape", ["1x1", "2x1", "2x2", "2x3", "3x4", "2x2x2", "1x7", "5x5", "4x4"])
+@pytest.mark.parametrize("tree", TREES)
+def test_symmetry_factor_is_the_kernels_multiplier(shape, tree):
+    tables = prepare(shape, tree=tree)
+    assert check.symmetry_factor(tables.sides, tree) == tables.factor
 
 
 def test_every_published_count_is_divisible_by_the_symmetry_factor():
+    """The published values, up to 7x7 and 3x14, are multiples of every factor the trees claim, in both side orders."""
+    assert FACTOR == 48
     for row in table():
-        cells = parse_shape(row.shape).cells
-        assert row.count % check.symmetry_factor(cells) == 0, f"{row.shape} ({row.source})"
+        shape = parse_shape(row.shape)
+        for sides in {shape.key, tuple(reversed(shape.key))}:
+            for tree in TREES:
+                factor = check.symmetry_factor(sides, tree)
+                assert row.count % factor == 0, f"{row.shape} ({row.source}) tree {tree}: factor {factor}"
 
 
 def test_plan_covers_the_tree_and_damage_is_named():
@@ -205,7 +216,7 @@ def test_a_clean_run_passes_every_check(counted):
     assert checks["audit"]["ok"] is None and checks["audit"]["detail"] == "skipped: no cluster"
     assert checks["published"]["detail"] == f"{SHAPE_COUNT} equals the published value ({SHAPE_SOURCE})"
     assert checks["total"]["value"] == SHAPE_COUNT
-    assert checks["divisibility"]["factor"] == 24 and SHAPE_COUNT % 24 == 0
+    assert checks["divisibility"]["factor"] == FACTOR and SHAPE_COUNT % FACTOR == 0
     assert info.certificate == checks["certificate"]["digest"]
     splits = tasks_where(store, Task.run_id == run_id, Task.state == "split")
     assert splits, "the fixture run must have split tasks"
@@ -238,7 +249,7 @@ def test_a_changed_count_fails_total_divisibility_published_and_certificate(coun
 def test_a_count_changed_by_the_factor_still_fails_total_published_certificate(counted):
     store, run_id = counted
     victim = tasks_where(store, Task.run_id == run_id, Task.state == "split")[0]
-    change(store, update(Task).where(Task.id == victim.id).values(count=Task.count + 24))
+    change(store, update(Task).where(Task.id == victim.id).values(count=Task.count + FACTOR))
     checks = _failed(store, run_id)
     assert checks["divisibility"]["ok"] is True  # a multiple of the factor: only the other checks see it
     assert checks["total"]["ok"] is False and checks["published"]["ok"] is False
@@ -280,7 +291,8 @@ def test_a_duplicate_task_fails_completeness(counted):
     """An overlapping task added and counted through the store's own API (an exact duplicate prefix is refused
     by the store's unique key)."""
     store, run_id = counted
-    tables = tables_for(tuple(int(p) for p in store.get_run(run_id).side_order.split("x")))
+    info = store.get_run(run_id)
+    tables = tables_for(tuple(int(p) for p in info.side_order.split("x")), info.settings["tree"])
     original = tasks_where(store, Task.run_id == run_id, Task.state == "done", Task.parent_id.is_not(None))[0]
     around = parse_prefix(original.prefix)[:-1]  # its parent node: a subtree that contains it
     store.add_tasks(run_id, [prefix_text(around)])
@@ -499,3 +511,68 @@ def test_completeness_checked_on_a_worker_agrees_with_the_check_here(client, cou
     there = check.verify_run(store, run_id, client=client, audit_fraction=0)["completeness"]
     assert there == here
     assert here["ok"] is (damage == "none"), here
+
+
+# -- runs planned before tree 2 ------------------------------------------------------------------
+
+
+def _as_made_before_tree_two(store, run_id) -> None:
+    """Drop the "tree" key: the settings of a run made before the map's symmetries were used have none."""
+    settings = {k: v for k, v in store.get_run(run_id).settings.items() if k != "tree"}
+    change(store, update(Run).where(Run.id == run_id).values(settings=settings))
+
+
+def _tree_total(tables, prefixes) -> int | None:
+    """What the prefixes count on ``tables``'s tree (None if one of them is not a node of it)."""
+    try:
+        return sum(count_below(tables, parse_prefix(p)).count for p in prefixes)
+    except PrefixError:
+        return None
+
+
+@pytest.mark.slow
+def test_a_run_made_before_tree_two_resumes_on_its_own_tree(client, new_store_url):
+    """A run planned on tree 1 and stopped partway, with settings as an older foldfarm wrote them, is finished
+    on tree 1 by resume: the published total, every check passing, divisibility by tree 1's factor."""
+    with Store(new_store_url()) as store:
+        settings = runner.Settings(task_nodes=30, task_seconds=0, tasks=8)
+        run_id = runner.create(store, SHAPE, settings, 1, tree=LEGACY_TREE)
+        _as_made_before_tree_two(store, run_id)
+        store.set_run_state(run_id, "running")
+        count_pending(store, run_id, settings.task_nodes, most=6)
+        store.set_run_state(run_id, "stopped")  # as Ctrl-C leaves it
+        info = store.get_run(run_id)
+        assert "tree" not in info.settings
+        tasks = store.progress(run_id).tasks
+        assert tasks.get("done") and tasks.get("split") and tasks.get("pending"), tasks
+        # The open tasks are subtrees of tree 1: on tree 2 they would count something else.
+        pending = [t.prefix for t in store.tasks(run_id, ["pending"], limit=None)]
+        assert _tree_total(prepare(SHAPE, tree=2), pending) != _tree_total(prepare(SHAPE, tree=1), pending)
+
+        summary = runner.drive(store, client, run_id)
+        info = store.get_run(run_id)
+        assert summary.count == info.total == SHAPE_COUNT, f"{SHAPE}: {SHAPE_SOURCE} publishes {SHAPE_COUNT}"
+        assert info.state == "verified" and "tree" not in info.settings
+        checks = info.checks
+        for name in ("total", "completeness", "divisibility", "audit", "published", "certificate"):
+            assert checks[name]["ok"] is True, (name, checks[name])
+        old_factor = 2 * 12  # tree 1 of 3x4: 12 rotations x 2 (turning the stack over)
+        assert checks["divisibility"]["factor"] == old_factor == check.symmetry_factor((3, 4), LEGACY_TREE)
+        assert "tree 1" in checks["divisibility"]["detail"]
+        scan = check.scan_tasks(store.check_rows(run_id), old_factor)
+        assert info.certificate == check.certificate("3x4", scan.entries)  # the digest text of before tree 2
+
+
+def test_a_run_on_a_tree_this_version_does_not_know_is_refused_in_one_line(tmp_path):
+    url = f"sqlite:///{tmp_path / 'future.sqlite'}"
+    with Store(url) as store:
+        run_id = store.create_run(SHAPE, "3x4", {**runner.Settings().to_dict(), "tree": 9})
+        store.add_tasks(run_id, ["/"])
+        with pytest.raises(UserError, match="search tree 9, which this version of foldfarm does not know"):
+            check.verify_run(store, run_id)
+    out = subprocess.run([sys.executable, "-m", "foldfarm", "resume", str(run_id), "--store", url],
+                         capture_output=True, text=True, timeout=120)
+    lines = out.stderr.strip().splitlines()
+    assert out.returncode == 2 and len(lines) == 1 and "search tree 9" in lines[0], out.stderr
+    with Store(url) as store:
+        assert store.get_run(run_id).state == "planned" and store.progress(run_id).tasks["pending"] == 1

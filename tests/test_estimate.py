@@ -40,7 +40,7 @@ def covers(est: Estimate, truth: float) -> bool:
     return est.low <= truth <= est.high
 
 
-@pytest.mark.parametrize("shape", ["5x5", "3x8", "2x12", "1x20"])
+@pytest.mark.parametrize("shape", ["5x5", "3x9", "2x12", "1x20"])  # 3x8 is small enough to be counted outright
 def test_default_estimate_is_within_ten_percent_of_published(shape):
     truth, source = one_published(shape)
     est = estimate(prepare(shape))

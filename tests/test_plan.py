@@ -14,27 +14,29 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from foldfarm.kernel import count_below, legal_prefix, prepare
+from foldfarm.kernel import count_below, expand, legal_prefix, prepare
 from foldfarm.plan import batched, plan
 from foldfarm.prefix import PrefixError, first_overlap, is_ancestor, parse_prefix, prefix_text
 from foldfarm.published import published
+from foldfarm.symmetry import TREES
 
-SHAPES = ["2x2", "1x6", "2x3", "3x3", "2x4", "2x2x2", "3x4", "2x6", "1x9", "2x2x3", "4x4"]
-
-
-def unsplit(shape: str) -> int:
-    return count_below(prepare(shape)).count
+# Tree 2 uses a symmetry of the map on 3x3, 2x2x2, 3x4, 2x2x3, 4x4, 3x5 and 3x3x2; the others are as on tree 1.
+SHAPES = ["2x2", "1x6", "2x3", "3x3", "2x4", "2x2x2", "3x4", "2x6", "1x9", "2x2x3", "4x4", "3x5", "3x3x2"]
 
 
-@settings(max_examples=60, deadline=None)
-@given(st.sampled_from(SHAPES), st.integers(1, 400), st.integers(0, 3))
-def test_plan_partitions_the_tree(shape, target, seed):
-    tables = prepare(shape)
+def unsplit(shape: str, tree: int = 2) -> int:
+    return count_below(prepare(shape, tree=tree)).count
+
+
+@settings(max_examples=80, deadline=None)
+@given(st.sampled_from(SHAPES), st.integers(1, 400), st.integers(0, 3), st.sampled_from(TREES))
+def test_plan_partitions_the_tree(shape, target, seed, tree):
+    tables = prepare(shape, tree=tree)
     tasks = list(plan(tables, target, seed=seed))
     assert len(tasks) >= 1
     assert first_overlap(tasks) is None
     assert len(set(tasks)) == len(tasks)
-    assert sum(count_below(tables, t).count for t in tasks) == unsplit(shape)
+    assert sum(count_below(tables, t).count for t in tasks) == unsplit(shape, tree) == unsplit(shape, 1)
 
 
 def test_plan_reaches_its_target_and_matches_published():
@@ -77,9 +79,9 @@ def test_batched_streams_texts():
 # ---- budgets and remainders --------------------------------------------------------------
 
 @settings(max_examples=60, deadline=None)
-@given(st.sampled_from(SHAPES), st.integers(1, 60), st.integers(0, 10**6))
-def test_remainder_covers_exactly_what_was_left(shape, budget, salt):
-    tables = prepare(shape)
+@given(st.sampled_from(SHAPES), st.integers(1, 60), st.integers(0, 10**6), st.sampled_from(TREES))
+def test_remainder_covers_exactly_what_was_left(shape, budget, salt, tree):
+    tables = prepare(shape, tree=tree)
     tasks = list(plan(tables, 5))
     task = tasks[salt % len(tasks)]
     whole = count_below(tables, task)
@@ -93,9 +95,10 @@ def test_remainder_covers_exactly_what_was_left(shape, budget, salt):
     assert part.count + sum(count_below(tables, r).count for r in part.remainder) == whole.count
 
 
-@pytest.mark.parametrize("shape", ["3x3", "2x5", "2x2x3", "3x4", "4x4"])
-def test_random_tiny_budgets_until_nothing_remains(shape):
-    tables = prepare(shape)
+@pytest.mark.parametrize("tree", TREES)
+@pytest.mark.parametrize("shape", ["3x3x2", "2x5", "2x2x3", "3x4", "4x4"])
+def test_random_tiny_budgets_until_nothing_remains(shape, tree):
+    tables = prepare(shape, tree=tree)
     rnd = random.Random(shape)
     pending = [()]
     total = 0
@@ -109,7 +112,7 @@ def test_random_tiny_budgets_until_nothing_remains(shape):
             pending.extend(out.remainder)
     assert splits > 10
     value = published(shape)
-    expected = value[0].count if value else unsplit(shape)  # 2x2x3: no published value, unsplit kernel
+    expected = value[0].count if value else unsplit(shape, 1)  # 2x2x3: no published value, tree 1 unsplit
     assert total == expected
 
 
@@ -152,3 +155,19 @@ def test_crossing_step_is_rejected():
     with pytest.raises(PrefixError, match="step 3 puts leaf 4 below leaf 1"):
         legal_prefix(tables, "/1/2/1")
     assert legal_prefix(tables, "/1/2/3") == (1, 2, 3)
+
+
+def test_a_step_only_the_symmetry_conditions_rule_out_is_named():
+    tables = prepare("3x5")  # tree 2: leaf 2 above leaf 3, and leaves 2, 5, 8 in this cyclic order
+    assert tables.reduction.conditions == ((1, 2, 3), (2, 5, 8))
+    path = ()
+    while len(path) < 6:  # leaves 2..7 placed, each at its first legal gap
+        path += (expand(tables, path)[0][0],)
+    legal = expand(tables, path)[0]
+    crossing_free = expand(prepare("3x5", tree=1), path)[0]
+    ruled_out = [m for m in crossing_free if m not in legal]
+    assert ruled_out, "placing leaf 8 must be cut by the condition somewhere"
+    with pytest.raises(PrefixError, match="step 7 puts leaf 8 below leaf .*: this tree keeps only leaves 2, 5, 8 in "
+                                          "this cyclic order down the stack"):
+        legal_prefix(tables, prefix_text(path + (ruled_out[0],)))
+    assert legal_prefix(prepare("3x5", tree=1), prefix_text(path + (ruled_out[0],)))

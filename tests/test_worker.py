@@ -52,10 +52,18 @@ def test_ready_worker_freezes_the_collector_only_on_the_way_out():
         gc.unfreeze()
 
 
-def test_work_outside_a_worker_counts_and_names_no_worker():
-    out = work((3, 4), ["/"], 0, 0)  # the whole 3x4 map in one task
+@pytest.mark.parametrize("tree", [1, 2])
+def test_work_outside_a_worker_counts_and_names_no_worker(tree):
+    out = work((3, 4), ["/"], 0, 0, tree=tree)  # the whole 3x4 map in one task
     assert out == [{"count": 15552, "nodes": out[0]["nodes"], "seconds": out[0]["seconds"], "complete": True,
                     "remainder": [], "worker": None}]  # 15552: OEIS A001416, 3x4
+
+
+def test_work_needs_the_runs_tree():
+    with pytest.raises(TypeError, match="tree"):  # a prefix names a subtree of one tree: no default
+        work((3, 4), ["/"], 0, 0)
+    legacy, symmetric = work((3, 4), ["/1/2/2"], 0, 0, tree=1)[0], work((3, 4), ["/1/2/2"], 0, 0, tree=2)[0]
+    assert legacy["count"] != symmetric["count"]
 
 
 def _worker_state(dask_worker) -> dict:
