@@ -561,7 +561,7 @@ def estimate_cmd(
     spend = estimate.cost(est, estimate.calibrate(tables, seed=n_seed), n_cores)
     if as_json:
         emit_json({"shape": parsed.text, "cells": parsed.cells, "side_order": "x".join(map(str, tables.sides)) or "1",
-                   **estimate.as_json(est, spend)})
+                   "tree": tables.tree, **estimate.as_json(est, spend)})
     else:
         for line in estimate.describe(parsed.text, est, spend):
             typer.echo(line)

@@ -28,6 +28,8 @@ def test_count_json():
     from oracle import count_by_permutations
     assert obj["count"] == count_by_permutations((2, 2, 2))  # brute-force oracle
     assert isinstance(obj["count"], int) and obj["seconds"] >= 0 and obj["nodes"] > 0
+    # tree 2: 8 rotations x 2 (turning over) x 2 (the diagonal of two sides)
+    assert obj["tree"] == 2 and obj["factor"] == 32 and obj["count"] % 32 == 0
 
 
 def test_given_order_gives_the_same_count():

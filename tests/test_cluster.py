@@ -190,7 +190,7 @@ def test_interrupted_coordinator_resumes_without_recounting(cluster, tmp_path, h
         state = store.get_run(1).state
         running = store.progress(1).tasks["running"]
     if how == signal.SIGINT:
-        assert proc.returncode == 130
+        assert proc.returncode == 130, stderr
         lines = stderr.strip().splitlines()
         assert lines and "resume with: foldfarm resume 1" in lines[-1], stderr
         assert state == "stopped" and running == 0  # in-flight tasks went back to pending

@@ -196,7 +196,7 @@ def test_cli_json():
     assert out.returncode == 0, out.stderr
     obj = json.loads(out.stdout)
     truth, source = one_published("3x8")
-    assert obj["shape"] == "8x3" and obj["side_order"] == "3x8" and obj["cores"] == 16
+    assert obj["shape"] == "8x3" and obj["side_order"] == "3x8" and obj["cores"] == 16 and obj["tree"] == 2
     assert abs(obj["estimate"] / truth - 1) <= 0.10, f"3x8: {source} publishes {truth}"
     assert obj["low"] < obj["estimate"] < obj["high"] and obj["exact"] is False
     assert obj["nodes"] > 0 and obj["core_hours"] > 0 and obj["nodes_per_second"] > 0
