@@ -164,7 +164,7 @@ def _check_probes(probes: int) -> None:
 
 
 @numba.njit(cache=True, nogil=True)
-def _strata(table, n, above, below, mark, gap, gapter, flat, offsets, first, arcs, probes, seed, budgets):
+def _strata(table, constrained, n, above, below, mark, gap, gapter, flat, offsets, first, arcs, probes, seed, budgets):
     """Count or probe each stratum ``j``: the node ``flat[offsets[j]:offsets[j+1]]``.
 
     A stratum whose subtree has at most ``budgets[j]`` nodes is counted
@@ -180,11 +180,11 @@ def _strata(table, n, above, below, mark, gap, gapter, flat, offsets, first, arc
     for j in range(k):
         steps = flat[offsets[j]:offsets[j + 1]]
         floor = steps.shape[0] + 2
-        bad, stamp = _replay(table, n, above, below, mark, gap, gapter, steps, first, arcs)
+        bad, stamp = _replay(table, constrained, n, above, below, mark, gap, gapter, steps, first, arcs)
         if bad:
             return j, exact, sums
         if budgets[j] > 0:
-            leaves, nodes, level, stamp = _search(table, n, above, below, mark, gap, gapter, floor, floor,
+            leaves, nodes, level, stamp = _search(table, constrained, n, above, below, mark, gap, gapter, floor, floor,
                                                   budgets[j], first, arcs, stamp)
             if level < floor:
                 exact[j] = 1
@@ -192,9 +192,9 @@ def _strata(table, n, above, below, mark, gap, gapter, flat, offsets, first, arc
                 sums[j, 2] = leaves
                 continue
             # the budget ran out mid-search: put the stratum back to its own leaves
-            bad, stamp = _replay(table, n, above, below, mark, gap, gapter, steps, first, arcs)
+            bad, stamp = _replay(table, constrained, n, above, below, mark, gap, gapter, steps, first, arcs)
         if probes[j] > 0:
-            a, b, c, d, stamp = _probe(table, n, above, below, mark, gap, floor, first, arcs, stamp, probes[j],
+            a, b, c, d, stamp = _probe(table, constrained, n, above, below, mark, gap, floor, first, arcs, stamp, probes[j],
                                        _node_seed(steps, seed))
             sums[j, 0] = a
             sums[j, 1] = b
@@ -270,7 +270,7 @@ def _run_strata(tables: Tables, strata: list[Steps], probes: np.ndarray, seed: i
     np.cumsum(lengths, out=offsets[1:])
     flat = np.fromiter((m for s in strata for m in s), np.int64, int(offsets[-1]))
     state = _scratch(tables.n)
-    bad, exact, sums = _strata(tables.table, tables.n, state.above, state.below, state.mark, state.gap,
+    bad, exact, sums = _strata(tables.table, tables.constrained, tables.n, state.above, state.below, state.mark, state.gap,
                                state.gapter, flat, offsets, tables.first, tables.arcs, probes, seed, budgets)
     if bad >= 0:
         raise PrefixError(f"{prefix_text(strata[bad])} is not a node of the {tables.n}-cell map's tree")

@@ -181,6 +181,8 @@ class Tables:
     sides: tuple[int, ...]
     n: int
     table: np.ndarray = field(repr=False)
+    #: ``constrained[l]``: the dimensions in which leaf ``l`` has a lower neighbour (walks of :func:`_gaps`)
+    constrained: np.ndarray = field(repr=False)
     #: the conditions leaf ``l`` decides are ``arcs[first[l]:first[l + 1]]``; each row ``(a, b)``
     #: says leaf ``l`` goes directly below a leaf of the arc from ``b`` down to ``a`` (``a`` excluded)
     first: np.ndarray = field(repr=False)
@@ -218,9 +220,11 @@ def tables_of(red: Reduction) -> Tables:
             raise ValueError(f"{(a, b, c)} is no condition of a {n}-cell map: three leaves, the largest last")
         arcs[k] = (a, b)
         first[c + 1:] += 1
-    for array in (first, arcs):
+    table = _table(red.sides)
+    constrained = (table[:, :, :].diagonal(axis1=0, axis2=2) != np.arange(n + 1)).sum(axis=0).astype(np.int64)
+    for array in (first, arcs, constrained):
         array.setflags(write=False)
-    return Tables(sides=red.sides, n=n, table=_table(red.sides), first=first, arcs=arcs, reduction=red)
+    return Tables(sides=red.sides, n=n, table=table, constrained=constrained, first=first, arcs=arcs, reduction=red)
 
 
 def tables_for(sides: tuple[int, ...], tree: int = CURRENT_TREE) -> Tables:
@@ -283,10 +287,12 @@ def _conditions(below, mark, stamp, gap, g0, g, first, arcs, l):
 
 
 @numba.njit(cache=True, nogil=True, inline="always")
-def _gaps(table, l, below, mark, stamp, gap, g0, emit):
+def _gaps(table, c, l, below, mark, stamp, gap, g0, emit):
     """List the allowed gaps of leaf ``l`` at ``gap[g0:]``; return the end.
 
-    Each constrained dimension walks the cycle once from leaf ``l``'s lower
+    ``c`` is the number of dimensions that constrain ``l``
+    (:attr:`Tables.constrained`; precomputed, which measured 3-7% faster
+    than counting them here at every node).  Each constrained dimension walks the cycle once from leaf ``l``'s lower
     neighbour, jumping over every same-class crease it meets (a gap inside
     that crease would cross it).  A gap is allowed when every constrained
     dimension produced it: the ``k``-th walk raises ``mark[m]`` from
@@ -297,9 +303,6 @@ def _gaps(table, l, below, mark, stamp, gap, g0, emit):
     written (the last leaf), and the count is returned as ``g0 + count``.
     """
     dims = table.shape[1]
-    c = 0
-    for i in range(dims):
-        c += table[l, i, l] != l
     k = 0
     g = g0
     for i in range(dims):
@@ -338,7 +341,7 @@ def _gaps(table, l, below, mark, stamp, gap, g0, emit):
 
 
 @numba.njit(cache=True, nogil=True)
-def _search(table, n, above, below, mark, gap, gapter, level, floor, budget, first, arcs, stamp):
+def _search(table, constrained, n, above, below, mark, gap, gapter, level, floor, budget, first, arcs, stamp):
     """Search below the placed leaves ``1..floor-1``, resuming at ``level``.
 
     Returns ``(leaves, nodes, level, stamp)``: reduced-tree leaves counted,
@@ -357,11 +360,11 @@ def _search(table, n, above, below, mark, gap, gapter, level, floor, budget, fir
         nodes += 1
         g0 = g
         if l == n and bulk:
-            leaves += _gaps(table, l, below, mark, stamp, gap, g0, False) - g0
+            leaves += _gaps(table, constrained[l], l, below, mark, stamp, gap, g0, False) - g0
             stamp += dims
             g = g0
         else:
-            g = _gaps(table, l, below, mark, stamp, gap, g0, True)
+            g = _gaps(table, constrained[l], l, below, mark, stamp, gap, g0, True)
             stamp += dims
             if first[l] != first[l + 1]:
                 g, stamp = _conditions(below, mark, stamp, gap, g0, g, first, arcs, l)
@@ -380,7 +383,7 @@ def _search(table, n, above, below, mark, gap, gapter, level, floor, budget, fir
 
 
 @numba.njit(cache=True, nogil=True)
-def _replay(table, n, above, below, mark, gap, gapter, steps, first, arcs):
+def _replay(table, constrained, n, above, below, mark, gap, gapter, steps, first, arcs):
     """Place leaf 1, then leaves ``2..len(steps)+1`` below ``steps``.
 
     Returns ``(bad, stamp)``: ``bad`` is 0 on success, else the 1-based
@@ -400,7 +403,7 @@ def _replay(table, n, above, below, mark, gap, gapter, steps, first, arcs):
     for j in range(steps.shape[0]):
         l = j + 2
         want = steps[j]
-        g = _gaps(table, l, below, mark, stamp, gap, 0, True)
+        g = _gaps(table, constrained[l], l, below, mark, stamp, gap, 0, True)
         stamp += dims
         ok = False
         for k in range(g):
@@ -421,7 +424,7 @@ def _replay(table, n, above, below, mark, gap, gapter, steps, first, arcs):
 
 
 @numba.njit(cache=True, nogil=True)
-def _probe(table, n, above, below, mark, gap, level, first, arcs, stamp, probes, seed):
+def _probe(table, constrained, n, above, below, mark, gap, level, first, arcs, stamp, probes, seed):
     """Knuth's random probes (1975) below the placed leaves ``1..level-1``.
 
     Each probe walks from the current node to a dead end or a last-leaf
@@ -444,7 +447,7 @@ def _probe(table, n, above, below, mark, gap, level, first, arcs, stamp, probes,
         nodes = 1.0
         leaves = 0.0
         while True:
-            g = _gaps(table, l, below, mark, stamp, gap, 0, True)
+            g = _gaps(table, constrained[l], l, below, mark, stamp, gap, 0, True)
             stamp += dims
             if first[l] != first[l + 1]:
                 g, stamp = _conditions(below, mark, stamp, gap, 0, g, first, arcs, l)
@@ -467,7 +470,7 @@ def _probe(table, n, above, below, mark, gap, level, first, arcs, stamp, probes,
 
 
 @numba.njit(cache=True, nogil=True)
-def _expand(table, n, above, below, mark, gap, gapter, steps, first, arcs, probes, seed):
+def _expand(table, constrained, n, above, below, mark, gap, gapter, steps, first, arcs, probes, seed):
     """Children of the node ``steps`` and a probe estimate of each one's nodes.
 
     Returns ``(children, estimates)``: the gaps of the next leaf, and for each
@@ -475,9 +478,9 @@ def _expand(table, n, above, below, mark, gap, gapter, steps, first, arcs, probe
     The node must be legal and must not be a last-leaf node.
     """
     dims = table.shape[1]
-    bad, stamp = _replay(table, n, above, below, mark, gap, gapter, steps, first, arcs)
+    bad, stamp = _replay(table, constrained, n, above, below, mark, gap, gapter, steps, first, arcs)
     l = steps.shape[0] + 2
-    g = _gaps(table, l, below, mark, stamp, gap, 0, True)
+    g = _gaps(table, constrained[l], l, below, mark, stamp, gap, 0, True)
     stamp += dims
     g, stamp = _conditions(below, mark, stamp, gap, 0, g, first, arcs, l)
     kids = gap[:g].copy()
@@ -486,7 +489,7 @@ def _expand(table, n, above, below, mark, gap, gapter, steps, first, arcs, probe
     if probes > 0 and k > 1:  # an only child needs no estimate: it is the whole subtree
         for j in range(k):
             _insert(above, below, l, kids[j])
-            s_nodes, _, _, _, stamp = _probe(table, n, above, below, mark, gap, l + 1, first, arcs,
+            s_nodes, _, _, _, stamp = _probe(table, constrained, n, above, below, mark, gap, l + 1, first, arcs,
                                              stamp, probes, seed + j)
             sizes[j] = s_nodes / probes
             _remove(above, below, l)
@@ -504,7 +507,7 @@ def _node_seed(steps, seed):
 
 
 @numba.njit(cache=True, nogil=True)
-def _expand_many(table, n, above, below, mark, gap, gapter, flat, offsets, first, arcs, probes, seed):
+def _expand_many(table, constrained, n, above, below, mark, gap, gapter, flat, offsets, first, arcs, probes, seed):
     """:func:`_expand` for many nodes: node ``j`` has steps ``flat[offsets[j]:offsets[j+1]]``.
 
     Each node's probes are seeded by :func:`_node_seed`, so a node's estimate
@@ -519,7 +522,7 @@ def _expand_many(table, n, above, below, mark, gap, gapter, flat, offsets, first
     at = 0
     for j in range(nodes):
         steps = flat[offsets[j]:offsets[j + 1]]
-        k, s = _expand(table, n, above, below, mark, gap, gapter, steps, first, arcs, probes,
+        k, s = _expand(table, constrained, n, above, below, mark, gap, gapter, steps, first, arcs, probes,
                        _node_seed(steps, seed))
         counts[j] = k.shape[0]
         kids[at:at + k.shape[0]] = k
@@ -669,7 +672,7 @@ def _placed(tables: Tables, steps: tuple[int, ...]) -> tuple[_State, int]:
                 f"step {k} puts leaf {k + 1} below leaf {m}, but only leaves 1..{k} are placed"
             )
     state = _scratch(n)
-    bad, stamp = _replay(tables.table, n, state.above, state.below, state.mark, state.gap,
+    bad, stamp = _replay(tables.table, tables.constrained, n, state.above, state.below, state.mark, state.gap,
                          state.gapter, np.asarray(steps, np.int64), tables.first, tables.arcs)
     if bad:
         step = abs(bad)
@@ -717,7 +720,7 @@ def count_below(tables: Tables, steps: tuple[int, ...] = (), budget: int | None 
     nodes = 0
     while True:
         chunk = left if deadline is None else min(left, CLOCK_CHUNK)
-        got, used, level, stamp = _search(tables.table, n, state.above, state.below, state.mark,
+        got, used, level, stamp = _search(tables.table, tables.constrained, n, state.above, state.below, state.mark,
                                           state.gap, state.gapter, level, floor, chunk,
                                           tables.first, tables.arcs, stamp)
         leaves += int(got)
@@ -747,7 +750,7 @@ def expand(tables: Tables, steps: tuple[int, ...], probes: int = 0,
     if len(steps) + 2 >= tables.n:
         raise PrefixError(f"a node placing {len(steps) + 1} leaves of {tables.n} has no children to split into")
     state = _scratch(tables.n)
-    kids, sizes = _expand(tables.table, tables.n, state.above, state.below, state.mark, state.gap,
+    kids, sizes = _expand(tables.table, tables.constrained, tables.n, state.above, state.below, state.mark, state.gap,
                           state.gapter, np.asarray(steps, np.int64), tables.first, tables.arcs, probes, seed)
     return kids.tolist(), sizes.tolist()
 
@@ -765,7 +768,7 @@ def expand_many(tables: Tables, nodes: list[tuple[int, ...]], probes: int,
     np.cumsum(lengths, out=offsets[1:])
     flat = np.fromiter((m for s in nodes for m in s), np.int64, int(offsets[-1]))
     state = _scratch(tables.n)
-    counts, kids, sizes = _expand_many(tables.table, tables.n, state.above, state.below, state.mark,
+    counts, kids, sizes = _expand_many(tables.table, tables.constrained, tables.n, state.above, state.below, state.mark,
                                        state.gap, state.gapter, flat, offsets, tables.first, tables.arcs,
                                        probes, seed)
     out = []
@@ -830,7 +833,7 @@ def probe(tables: Tables, steps: tuple[int, ...], probes: int, seed: int = 0) ->
     if tables.n == 1:
         return float(probes), float(probes), float(probes), float(probes)
     state, stamp = _placed(tables, steps)
-    a, b, c, d, _ = _probe(tables.table, tables.n, state.above, state.below, state.mark, state.gap,
+    a, b, c, d, _ = _probe(tables.table, tables.constrained, tables.n, state.above, state.below, state.mark, state.gap,
                            len(steps) + 2, tables.first, tables.arcs, stamp, probes, seed)
     return a, b, c, d
 
