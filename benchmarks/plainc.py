@@ -4,7 +4,9 @@
 returns the binary's path; ``run(binary, sides)`` counts one shape and
 returns ``(count, seconds)``, where seconds is the binary's own
 CLOCK_MONOTONIC measurement of its search loop (table set-up and process
-start-up excluded).
+start-up excluded); ``run_timed`` also returns the CPU seconds of that loop
+(CLOCK_PROCESS_CPUTIME_ID), which other processes on a shared machine
+disturb far less.
 
 Run this file directly for a self-check: it builds the binary in a
 temporary directory and compares its counts with the published table
@@ -54,12 +56,19 @@ def run(binary: str | Path, sides: tuple[int, ...]) -> tuple[int, float]:
     Returns ``(count, seconds)``: the number of foldings and the seconds the
     binary spent in its search loop.
     """
+    count, seconds, _ = run_timed(binary, sides)
+    return count, seconds
+
+
+def run_timed(binary: str | Path, sides: tuple[int, ...]) -> tuple[int, float, float]:
+    """:func:`run`, also returning the CPU seconds of the search loop: ``(count, seconds, cpu_seconds)``."""
     proc = subprocess.run([str(binary), *(str(p) for p in sides)], capture_output=True, text=True)
     if proc.returncode != 0:
         msg = proc.stderr.strip() or f"exit status {proc.returncode}"
         raise PlainCError(f"{Path(binary).name} {'x'.join(map(str, sides))}: {msg}")
     try:
-        return int(proc.stdout.strip()), float(proc.stderr.strip())
+        wall, cpu = proc.stderr.split()
+        return int(proc.stdout.strip()), float(wall), float(cpu)
     except ValueError:
         raise PlainCError(
             f"{Path(binary).name} {'x'.join(map(str, sides))}: unexpected output "

@@ -63,18 +63,19 @@ def main() -> None:
         truth = published(shape)
         print(f"{shape} whole tree: stratified estimate, {args.probes:,} probes, seed {args.seed}"
               + (f"; published {truth[0].count} ({truth[0].source})" if truth else ""))
-        per = {}
+        nodes, years = {}, {}
         for tree in (1, 2):
             tables = kernel.prepare(shape, tree=tree)
             est = estimate(tables, args.probes, args.seed)
             spend = cost(est, calibrate(tables, seed=args.seed), 1)
-            folds = truth[0].count if truth else est.count
-            per[tree] = est.nodes / folds
+            nodes[tree], years[tree] = est.nodes, spend.core_years
+            per = f", {est.nodes / truth[0].count:.5f} nodes per published folding" if truth else ""
             print(f"  tree {tree}: nodes {est.nodes:.4g} (95% {est.nodes_low:.4g} to {est.nodes_high:.4g}), "
-                  f"count {est.count:.4g} (95% {est.low:.4g} to {est.high:.4g}), {per[tree]:.5f} nodes/folding; "
+                  f"count {est.count:.4g} (95% {est.low:.4g} to {est.high:.4g}){per}; "
                   f"{spend.nodes_per_second / 1e6:.1f} M nodes/s: {spend.core_years:.3g} core-years "
                   f"(95% {spend.core_hours_low / HOURS_PER_YEAR:.3g} to {spend.core_hours_high / HOURS_PER_YEAR:.3g})")
-        print(f"  tree 2: {per[1] / per[2]:.2f}x fewer nodes per folding")
+        print(f"  tree 2: {nodes[1] / nodes[2]:.2f}x fewer nodes for the same foldings, "
+              f"{years[2] / years[1]:.2f} of tree 1's core-years")
 
     if args.full:
         for tree in (1, 2):
