@@ -38,11 +38,13 @@ feeds them.
     (:mod:`foldfarm.published`), naming the source.
 ``transpose``
     The same map counted with its sides in another order: a different
-    search tree, planned and split independently, must give the same total.
+    search tree, planned and split independently (on the current tree:
+    a run made on tree 1 is recounted on tree 2), must give the same total.
 ``certificate``
     ``sha256:`` + SHA-256 of the text ``foldfarm certificate 1 <side
     order>\\n`` (``foldfarm certificate 1 <side order> tree <tree>\\n`` for
-    a run on a tree other than 1) followed by one line ``<prefix> <state> <count>\\n`` per done
+    a run on a tree other than 1, whose prefixes name other subtrees)
+    followed by one line ``<prefix> <state> <count>\\n`` per done
     or split task, sorted by prefix as a tuple of numbers.  Done counts
     and split partial counts together make the total, so the digest
     certifies it.  Two stores holding the same run give the same digest,

@@ -69,17 +69,17 @@ an exchange of sides keeps coordinates, so parity).  Relabelling every
 leaf ``x`` of a folding by ``g(x)`` therefore gives a folding, and on cyclic
 orders this action commutes with ``M``.  Two facts decide when a group of
 such relabellings, with or without ``M``, acts *freely* on ``C`` (no member
-but the identity fixes a cyclic order), which makes every class exactly as
+but the identity keeps a cyclic order), which makes every class exactly as
 large as the group:
 
-(F1) if ``g != 1`` fixes some leaf, ``g`` fixes no cyclic order: if it
-fixed ``s``, it would move every leaf the same number of places round ``s``,
+(F1) if ``g != 1`` keeps some leaf, ``g`` keeps no cyclic order: if it
+kept ``s``, it would move every leaf the same number of places round ``s``,
 and a leaf it keeps shows that number is 0, so ``g`` would keep every leaf.
 
-(F2) if ``gM`` fixes a cyclic order ``s``, then ``g`` acts on the places of
+(F2) if ``gM`` keeps a cyclic order ``s``, then ``g`` acts on the places of
 ``s`` as a reflection of the circle: ``g`` has order 2 and keeps at most two
 leaves (a reflection of ``n`` points on a circle keeps 0, 1 or 2 of them).
-So if ``g`` is not an involution, or keeps 3 leaves or more, ``gM`` fixes
+So if ``g`` is not an involution, or keeps 3 leaves or more, ``gM`` keeps
 no cyclic order.
 
 A *condition* ``[a, b, c]`` is kept by every relabelling that keeps its
@@ -109,12 +109,14 @@ cyclic order of placed ones; so a condition prunes when ``c`` is placed:
 * *Tree 2, a square of odd sides* ``q >= 3`` (5x5; in more dimensions two
   equal odd sides).  Its 8 symmetries ``K`` (turns and reflections in the
   plane of the square) all keep the middle cell ``c`` of the square (the
-  first one, in more dimensions), so by (F1) ``K`` acts freely on ``C``
-  (``M`` is not used: the group of ``K`` and ``M`` holds the half turn
-  with ``M``, and the half turn keeps one leaf only, so (F2) does not apply;
-  on 3x3 it does keep 24 of the 152 cyclic orders, as the oracle shows).  Let ``O`` be the four neighbours of ``c``
-  in the square; ``K`` permutes them transitively, and the members of ``K``
-  keeping one of them, ``o``, are 1 and a reflection ``r``.  For a cyclic
+  first one, in more dimensions), so by (F1) ``K`` acts freely on ``C``.
+  (``M`` is not used: the group of ``K`` and ``M`` holds the half turn with
+  ``M``, and the half turn keeps one leaf only, so (F2) does not apply; on
+  3x3 it does keep 24 of the 152 cyclic orders, as the oracle shows.)  Let
+  ``O`` be the four neighbours of ``c`` in the square; ``K`` permutes them
+  transitively, and the members of ``K`` keeping one of them, ``o``, are 1
+  and the reflection ``r`` in the line through ``c`` and ``o`` (which keeps
+  that line's ``q >= 3`` cells and moves the others).  For a cyclic
   order ``s`` let ``f(s)`` be the first member of ``O`` met reading down
   from ``c``; relabelling does not change the direction of reading, so
   ``f(ks) = k(f(s))`` for ``k`` in ``K``.  In the class ``Ks`` (8 cyclic
@@ -126,9 +128,10 @@ cyclic order of placed ones; so a condition prunes when ``c`` is placed:
   ``[2, 3, 4]``.)
 
 Maps with no symmetry of these kinds (2xN, 2x2, 4x6, strips) keep tree 1's
-reduction on tree 2.  ``tests/test_kernel.py``
-checks every reduction against :func:`count_plain` and the brute-force
-oracle (one folding per class, every class as large as the group).
+reduction on tree 2.  ``tests/test_kernel.py`` checks every reduction
+against :func:`count_plain` (and that each choice of answers to the
+conditions is equally common); ``tests/test_symmetry.py`` checks (F1),
+(F2) and every tree's conditions on the brute-force oracle's foldings.
 
 *Last leaf in bulk*.  The children of a node at depth ``n - 1`` are the
 foldings themselves, one per allowed gap of leaf ``n``; their number is the
