@@ -23,9 +23,11 @@ pytestmark = pytest.mark.slow
 
 DASK = [sys.executable, "-m", "distributed.cli.dask_scheduler"]
 WORKER = [sys.executable, "-m", "distributed.cli.dask_worker"]
-# Check values: OEIS A001418 (4x4) and A001416 (3x9).
+# Check values: OEIS A001418 (4x4) and A000136 (1x22).  LONG must run long enough to be interrupted once 40
+# tasks are done: 2.4e8 nodes in tasks of LONG_TASK_NODES, about 5 s on one core (3x9, used before, takes
+# 2 s since tree 2 halved its nodes; 3x10 takes 15 s).
 SMALL, SMALL_COUNT = "4x4", 300608
-LONG, LONG_COUNT = "3x9", 1944012744
+LONG, LONG_COUNT, LONG_TASK_NODES = "1x22", 22930109884, "1000000"
 
 
 class Cluster:
@@ -140,13 +142,13 @@ def test_killed_worker_loses_nothing(tmp_path):
     own = Cluster(tmp_path / "own")
     try:
         url = f"sqlite:///{tmp_path / 'kill-worker.sqlite'}"
-        proc = start("run", LONG, "--scheduler", own.address, "--store", url, "--task-nodes", "300000",
+        proc = start("run", LONG, "--scheduler", own.address, "--store", url, "--task-nodes", LONG_TASK_NODES,
                      "--json", "--quiet")
         wait_for_done(url, 1, 40, proc)
         own.workers[0].send_signal(signal.SIGKILL)
         stdout, stderr = proc.communicate(timeout=300)
         assert proc.returncode == 0, stderr
-        assert json.loads(stdout)["count"] == LONG_COUNT, f"{LONG}: OEIS A001416 publishes {LONG_COUNT}"
+        assert json.loads(stdout)["count"] == LONG_COUNT, f"{LONG}: OEIS A000136 publishes {LONG_COUNT}"
         assert own.workers[0].poll() is not None  # it really died
         assert_partition(url, 1, LONG_COUNT)
     finally:
@@ -164,14 +166,14 @@ def local_workers(coordinator: subprocess.Popen) -> list:
 
 def test_killed_local_worker_loses_nothing(tmp_path):
     url = f"sqlite:///{tmp_path / 'kill-local.sqlite'}"
-    proc = start("run", LONG, "--workers", "2", "--store", url, "--task-nodes", "300000", "--json", "--quiet")
+    proc = start("run", LONG, "--workers", "2", "--store", url, "--task-nodes", LONG_TASK_NODES, "--json", "--quiet")
     wait_for_done(url, 1, 40, proc)
     victims = local_workers(proc)
     assert len(victims) == 2, victims
     victims[0].kill()  # SIGKILL; its nanny starts another worker, which loads the kernel before its first task
     stdout, stderr = proc.communicate(timeout=300)
     assert proc.returncode == 0, stderr
-    assert json.loads(stdout)["count"] == LONG_COUNT, f"{LONG}: OEIS A001416 publishes {LONG_COUNT}"
+    assert json.loads(stdout)["count"] == LONG_COUNT, f"{LONG}: OEIS A000136 publishes {LONG_COUNT}"
     assert not victims[0].is_running()
     assert_partition(url, 1, LONG_COUNT)
 
@@ -179,7 +181,7 @@ def test_killed_local_worker_loses_nothing(tmp_path):
 @pytest.mark.parametrize("how", [signal.SIGKILL, signal.SIGINT], ids=["kill-9", "ctrl-c"])
 def test_interrupted_coordinator_resumes_without_recounting(cluster, tmp_path, how):
     url = f"sqlite:///{tmp_path / 'coordinator.sqlite'}"
-    proc = start("run", LONG, "--scheduler", cluster.address, "--store", url, "--task-nodes", "300000",
+    proc = start("run", LONG, "--scheduler", cluster.address, "--store", url, "--task-nodes", LONG_TASK_NODES,
                  "--json", "--quiet")
     wait_for_done(url, 1, 40, proc)
     proc.send_signal(how)
@@ -199,7 +201,7 @@ def test_interrupted_coordinator_resumes_without_recounting(cluster, tmp_path, h
 
     out = foldfarm("resume", "1", "--scheduler", cluster.address, "--store", url, "--json", "--quiet")
     assert out.returncode == 0, out.stderr
-    assert json.loads(out.stdout)["count"] == LONG_COUNT, f"{LONG}: OEIS A001416 publishes {LONG_COUNT}"
+    assert json.loads(out.stdout)["count"] == LONG_COUNT, f"{LONG}: OEIS A000136 publishes {LONG_COUNT}"
     assert_partition(url, 1, LONG_COUNT)
     after = snapshot(url, 1)
     assert all(after[p] == before[p] for p in before), "a task recorded done was counted again"

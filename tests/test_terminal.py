@@ -18,7 +18,7 @@ import time
 from pathlib import Path
 
 import pytest
-from test_cluster import LONG, LONG_COUNT, Cluster, assert_partition, foldfarm, wait_for_done
+from test_cluster import LONG, LONG_COUNT, LONG_TASK_NODES, Cluster, assert_partition, foldfarm, wait_for_done
 
 from foldfarm.store import Store
 
@@ -85,9 +85,9 @@ class _Running:
 
 
 def ctrl_c_then_resume(tmp_path: Path, *where: str) -> str:
-    """Start 3x9, press Ctrl-C once some tasks are done, check the screen, resume; return the screen."""
+    """Start LONG, press Ctrl-C once some tasks are done, check the screen, resume; return the screen."""
     url = f"sqlite:///{tmp_path / 'terminal.sqlite'}"
-    term = Terminal("run", LONG, "--store", url, "--task-nodes", "300000", *where)
+    term = Terminal("run", LONG, "--store", url, "--task-nodes", LONG_TASK_NODES, *where)
     wait_for_done(url, 1, 40, _Running(term.pid))
     term.ctrl_c()
     code = term.wait()
@@ -100,7 +100,7 @@ def ctrl_c_then_resume(tmp_path: Path, *where: str) -> str:
 
     out = foldfarm("resume", "1", "--store", url, "--quiet", *where)
     assert out.returncode == 0, out.stderr
-    assert out.stdout.strip() == str(LONG_COUNT), f"{LONG}: OEIS A001416 publishes {LONG_COUNT}"
+    assert out.stdout.strip() == str(LONG_COUNT), f"{LONG}: OEIS A000136 publishes {LONG_COUNT}"
     assert_partition(url, 1, LONG_COUNT)
     return screen
 
@@ -182,6 +182,7 @@ def test_a_run_whose_checks_fail_names_them_and_exits_1(tmp_path):
 
     from foldfarm import run as runner
     from foldfarm.store.models import Task
+    from foldfarm.symmetry import tree_of
     from foldfarm.worker import work
 
     url = f"sqlite:///{tmp_path / 'tampered.sqlite'}"
@@ -190,7 +191,8 @@ def test_a_run_whose_checks_fail_names_them_and_exits_1(tmp_path):
         store.set_run_state(run_id, "running")
         half = store.next_pending(run_id, 10)
         store.mark_running([t.id for t in half])
-        for task, got in zip(half, work((3, 4), [t.prefix for t in half], 0, 0)):
+        tree = tree_of(store.get_run(run_id).settings)
+        for task, got in zip(half, work((3, 4), [t.prefix for t in half], 0, 0, tree=tree)):
             store.record_done(task.id, got["count"], got["nodes"], got["seconds"])
         store.set_run_state(run_id, "stopped")
         with store.engine.begin() as conn:  # a flipped bit in one recorded count
