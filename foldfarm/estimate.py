@@ -194,8 +194,8 @@ def _strata(table, constrained, n, above, below, mark, gap, gapter, flat, offset
             # the budget ran out mid-search: put the stratum back to its own leaves
             bad, stamp = _replay(table, constrained, n, above, below, mark, gap, gapter, steps, first, arcs)
         if probes[j] > 0:
-            a, b, c, d, stamp = _probe(table, constrained, n, above, below, mark, gap, floor, first, arcs, stamp, probes[j],
-                                       _node_seed(steps, seed))
+            a, b, c, d, stamp = _probe(table, constrained, n, above, below, mark, gap, floor, first, arcs, stamp,
+                                       probes[j], _node_seed(steps, seed))
             sums[j, 0] = a
             sums[j, 1] = b
             sums[j, 2] = c
@@ -270,8 +270,9 @@ def _run_strata(tables: Tables, strata: list[Steps], probes: np.ndarray, seed: i
     np.cumsum(lengths, out=offsets[1:])
     flat = np.fromiter((m for s in strata for m in s), np.int64, int(offsets[-1]))
     state = _scratch(tables.n)
-    bad, exact, sums = _strata(tables.table, tables.constrained, tables.n, state.above, state.below, state.mark, state.gap,
-                               state.gapter, flat, offsets, tables.first, tables.arcs, probes, seed, budgets)
+    bad, exact, sums = _strata(tables.table, tables.constrained, tables.n, state.above, state.below, state.mark,
+                               state.gap, state.gapter, flat, offsets, tables.first, tables.arcs, probes, seed,
+                               budgets)
     if bad >= 0:
         raise PrefixError(f"{prefix_text(strata[bad])} is not a node of the {tables.n}-cell map's tree")
     return exact.astype(bool), sums

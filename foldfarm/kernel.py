@@ -185,7 +185,7 @@ class Tables:
     sides: tuple[int, ...]
     n: int
     table: np.ndarray = field(repr=False)
-    #: ``constrained[l]``: the dimensions in which leaf ``l`` has a lower neighbour (walks of :func:`_gaps`)
+    #: ``constrained[l]``: how many dimensions constrain leaf ``l`` (it has a lower neighbour there; :func:`_gaps`)
     constrained: np.ndarray = field(repr=False)
     #: the conditions leaf ``l`` decides are ``arcs[first[l]:first[l + 1]]``; each row ``(a, b)``
     #: says leaf ``l`` goes directly below a leaf of the arc from ``b`` down to ``a`` (``a`` excluded)
@@ -296,9 +296,10 @@ def _gaps(table, c, l, below, mark, stamp, gap, g0, emit):
 
     ``c`` is the number of dimensions that constrain ``l``
     (:attr:`Tables.constrained`; precomputed, which measured 3-7% faster
-    than counting them here at every node).  Each constrained dimension walks the cycle once from leaf ``l``'s lower
-    neighbour, jumping over every same-class crease it meets (a gap inside
-    that crease would cross it).  A gap is allowed when every constrained
+    than counting them here at every node).  Each constrained dimension
+    walks the cycle once from leaf ``l``'s lower neighbour, jumping over
+    every same-class crease it meets (a gap inside that crease would cross
+    it).  A gap is allowed when every constrained
     dimension produced it: the ``k``-th walk raises ``mark[m]`` from
     ``stamp + k - 1`` to ``stamp + k``, and the last walk emits the gaps
     whose mark says all earlier walks passed them.  ``stamp`` grows by the

@@ -99,7 +99,7 @@ def plan_tasks(sides: tuple[int, ...], target: int, probes: int, seed: int,
 
 def children(sides: tuple[int, ...], nodes: list[tuple[int, ...]], trusted: list[bool], *,
              tree: int) -> list[list[int] | None]:
-    """:func:`foldfarm.kernel.children_of` for the map with working sides ``sides`` on tree ``tree`` (what the checks ask)."""
+    """:func:`foldfarm.kernel.children_of` for the map with working sides ``sides`` on tree ``tree`` (the checks ask)."""
     from foldfarm.kernel import children_of, tables_for
 
     return children_of(tables_for(tuple(sides), tree), nodes, trusted)

@@ -146,7 +146,8 @@ def test_the_conditions_keep_one_folding_in_factor_over_n_of_every_class(sides, 
     ((5, 5), 8, "square"), ((3, 3), 8, "square"), ((7, 7), 8, "square"), ((3, 3, 3), 8, "square"),
     ((3, 8), 4, "side 1, of 3"), ((4, 5), 4, "side 2, of 5"), ((5, 6), 4, "side 1, of 5"),
     ((4, 4), 4, "diagonal"), ((8, 8), 4, "diagonal"), ((6, 6), 4, "diagonal"), ((2, 2, 2), 4, "diagonal"),
-    ((2, 12), 2, "turning"), ((4, 6), 2, "turning"), ((2, 2), 2, "turning"), ((2, 9), 2, "turning"), ((20,), 2, "turning"),
+    ((2, 12), 2, "turning"), ((4, 6), 2, "turning"), ((2, 2), 2, "turning"), ((2, 9), 2, "turning"),
+    ((20,), 2, "turning"),
 ])
 def test_which_symmetry_each_map_uses(sides, group, kind):
     red = reduction(sides, CURRENT_TREE)
