@@ -108,15 +108,21 @@ def _budget(task_seconds: str | None, task_nodes: str | None) -> dict:
     """Run settings from the budget options; one line and exit 2 for a bad value."""
     values: dict = {}
     if task_seconds is not None:
-        try:
-            values["task_seconds"] = float(task_seconds)
-        except ValueError:
-            values["task_seconds"] = -1.0
-        if not values["task_seconds"] >= 0:
-            fail(f"--task-seconds must be a number of seconds >= 0, not {task_seconds!r}")
+        values["task_seconds"] = _seconds(task_seconds, "--task-seconds")
     if task_nodes is not None:
         values["task_nodes"] = _whole(task_nodes, "--task-nodes")
     return values
+
+
+def _seconds(text: str, option: str) -> float:
+    """``text`` as a finite number of seconds >= 0; one line and exit 2 otherwise."""
+    try:
+        value = float(text)
+    except ValueError:
+        value = -1.0
+    if not 0 <= value < float("inf"):
+        fail(f"{option} must be a number of seconds >= 0, not {text!r}")
+    return value
 
 
 def _open_store(url: str | None):
@@ -208,6 +214,8 @@ def run_cmd(
     task_nodes: str = TaskNodesOpt,
     tasks: str = typer.Option(None, "--tasks", help="Tasks to plan (default: 64 per worker thread, at least 256)."),
     given_order: bool = typer.Option(False, "--given-order", help="Search the sides in the order given."),
+    store_wait: str = typer.Option(None, "--store-wait", help="Seconds to wait for a store that stops answering "
+                                   "(a database restart) before stopping the run cleanly (default 300)."),
     as_json: bool = JsonOpt,
     quiet: bool = QuietOpt,
 ) -> None:
@@ -232,6 +240,8 @@ def run_cmd(
         values["tasks"] = _whole(tasks, "--tasks", 1)
     if given_order:
         values["order"] = "given"
+    if store_wait is not None:
+        values["store_wait"] = _seconds(store_wait, "--store-wait")
     settings = Settings.from_dict(values)
     _head_start(scheduler, workers)
     opened = _open_store(store)

@@ -13,7 +13,7 @@ to cut and drive it; command-line options override it.  Example
 Keys: ``name``, ``shape`` (required), ``store``, ``scheduler``, ``workers``,
 and the run settings of :class:`foldfarm.run.Settings` (``task_seconds``,
 ``task_nodes``, ``tasks``, ``probes``, ``seed``, ``order``, ``window``,
-``max_attempts``, ``audit``).
+``max_attempts``, ``audit``, ``store_wait``).
 """
 
 from __future__ import annotations
@@ -28,7 +28,7 @@ from foldfarm.shape import parse_shape
 _TYPES = {
     "name": str, "shape": str, "store": str, "scheduler": str, "workers": int,
     "task_seconds": (int, float), "task_nodes": int, "tasks": int, "probes": int, "seed": int,
-    "order": str, "window": int, "max_attempts": int, "audit": (int, float),
+    "order": str, "window": int, "max_attempts": int, "audit": (int, float), "store_wait": (int, float),
 }
 _CLUSTER = {"name", "shape", "store", "scheduler", "workers"}
 

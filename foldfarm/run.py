@@ -70,7 +70,9 @@ class Settings:
     ``task_seconds``/``task_nodes`` bound one task's work (whichever comes
     first; ``task_nodes`` 0 means no node bound); ``tasks`` is the planner's
     target (0: choose from the cluster size); ``window`` is in-flight tasks
-    per worker thread.
+    per worker thread; ``store_wait`` is how long, in seconds, the
+    coordinator waits for a store that stopped answering before it stops
+    the run (:mod:`foldfarm.outage`).
     """
 
     task_seconds: float = 120.0
@@ -82,6 +84,7 @@ class Settings:
     window: int = 4
     max_attempts: int = 3
     audit: float = 0.01
+    store_wait: float = 300.0
 
     @classmethod
     def from_dict(cls, data: dict) -> Settings:
@@ -301,7 +304,11 @@ class Summary:
 
 
 class Stopped(Exception):
-    """The user interrupted the run; everything in flight went back to pending."""
+    """The run stopped cleanly before its end (Ctrl-C, SIGTERM, a store gone for too long).
+
+    Everything in flight went back to pending, or, if the store could not be
+    reached, is still ``running`` there and goes back to pending on resume.
+    """
 
     def __init__(self, run: int):
         super().__init__(f"run {run} stopped")
@@ -366,20 +373,28 @@ def planned(sides: tuple[int, ...], settings: Settings, client=None) -> tuple[li
 
 
 def drive(store, client, run_id: int, *, holder: str | None = None, take_over: bool = False,
-          on_progress: Callable[[Any], None] | None = None) -> Summary:
+          on_progress: Callable[[Any], None] | None = None,
+          on_notice: Callable[[str], None] | None = None) -> Summary:
     """Drive run ``run_id`` on ``client`` until nothing is open; record everything in ``store``.
 
-    Raises :class:`Stopped` after a clean stop on Ctrl-C.
+    Raises :class:`Stopped` after a clean stop on Ctrl-C, or when the store
+    did not answer for the run's ``store_wait`` seconds.  ``on_notice``
+    receives the lines that say the store stopped answering and answers
+    again (default: standard error).
     """
+    from foldfarm.outage import PatientStore, StoreGone
     from foldfarm.store import TaskResult
     from foldfarm.worker import ReadyWorker, work
 
     started = time.perf_counter()
     holder = holder or holder_name()
+    notice = on_notice or _to_stderr
     run = store.get_run(run_id)
     if run.state in ("done", "verified", "suspect"):
         return finish(store, run_id, started)
     settings = Settings.from_dict(run.settings)
+    raw, dispatch = store, None
+    store = PatientStore(raw, settings.store_wait, notice, holding=lambda: len(dispatch.done) if dispatch else 0)
     sides = tuple(int(p) for p in run.side_order.split("x") if int(p) > 1)
     take_lease(store, run_id, holder, force=take_over)
     try:
@@ -453,7 +468,7 @@ def drive(store, client, run_id: int, *, holder: str | None = None, take_over: b
                 store.mark_running([t for t, _, _ in again])
                 submit([again])
 
-        heart = Heartbeat(store, run_id, holder)
+        heart = Heartbeat(raw, run_id, holder)  # tries once a beat, never waits: the lease TTL leaves room
         try:
             refill()
             while dispatch.busy():
@@ -474,14 +489,18 @@ def drive(store, client, run_id: int, *, holder: str | None = None, take_over: b
                     shown = now
             flush()
         except KeyboardInterrupt:
-            _stop(store, client, run_id, futures, flush)
+            _stop(raw, client, run_id, futures, dispatch)
+            raise Stopped(run_id) from None
+        except StoreGone as exc:
+            notice(f"foldfarm: {exc}; stopping run {run_id}")
+            _stop(raw, client, run_id, futures, dispatch)
             raise Stopped(run_id) from None
         finally:
             heart.stop()
         return finish(store, run_id, started, client)
     finally:
         try:
-            store.release_lease(run_id, holder)
+            raw.release_lease(run_id, holder)
         except Exception:  # the lease expires on its own; never mask the real outcome
             pass
 
@@ -513,7 +532,8 @@ class Heartbeat:
             except LeaseLost as exc:
                 self.lost = exc
                 return
-            except StoreError:  # a database hiccup: try again next beat, the TTL leaves room
+            except StoreError:  # a hiccup or an outage: try again next beat.  A lease that expired
+                # meanwhile is still ours unless another coordinator took it (the beat then says so).
                 continue
 
     def check(self) -> None:
@@ -525,9 +545,17 @@ class Heartbeat:
         self._thread.join(timeout=5)
 
 
-def _stop(store, client, run_id: int, futures: dict, flush: Callable[[], None]) -> None:
-    """Ctrl-C: cancel what is in flight, record what arrived, return the rest to pending."""
+def _stop(store, client, run_id: int, futures: dict, dispatch: Dispatch | None) -> None:
+    """A clean stop: cancel what is in flight, record what arrived, return the rest to pending.
+
+    Each store call is tried once: a store that does not answer is not waited
+    for (Ctrl-C must stop now; a store gone for too long was waited for
+    already).  What it could not record stays ``running`` in the store, and
+    resume returns it to pending.
+    """
     import signal
+
+    from foldfarm.store import StoreUnavailable
 
     previous = signal.signal(signal.SIGINT, signal.SIG_IGN)  # a second Ctrl-C must not cut this short
     try:
@@ -535,11 +563,22 @@ def _stop(store, client, run_id: int, futures: dict, flush: Callable[[], None]) 
             client.cancel(list(futures))
         except Exception:
             pass
-        flush()
-        store.reset_running(run_id)
-        store.set_run_state(run_id, "stopped")
+        try:
+            if dispatch is not None and dispatch.done:
+                store.record_done_many(dispatch.done)
+                dispatch.done = []
+            store.reset_running(run_id)
+            store.set_run_state(run_id, "stopped")
+        except StoreUnavailable:
+            pass
     finally:
         signal.signal(signal.SIGINT, previous)
+
+
+def _to_stderr(line: str) -> None:
+    import sys
+
+    print(line, file=sys.stderr, flush=True)
 
 
 def finish(store, run_id: int, started: float, client=None) -> Summary:
