@@ -102,6 +102,27 @@ QuietOpt = typer.Option(False, "--quiet", help="No progress display.")
 TakeOverOpt = typer.Option(False, "--take-over", help="Drive the run even if another coordinator holds its lease.")
 TaskSecondsOpt = typer.Option(None, "--task-seconds", help="Budget of one task in seconds (default 120).")
 TaskNodesOpt = typer.Option(None, "--task-nodes", help="Budget of one task in search nodes (default: none).")
+ClusterOpt = typer.Option(None, "--cluster", help="local (worker processes on this machine; the default) or slurm "
+                          "(worker jobs through dask-jobqueue, configured by jobqueue.slurm.*; foldfarm[slurm]).")
+JobsOpt = typer.Option(None, "--jobs", help="SLURM worker jobs to keep: N, or MIN:MAX by load; ended jobs are "
+                       "replaced.")
+JobCoresOpt = typer.Option(None, "--job-cores", help="Cores of a SLURM worker job (default: jobqueue.slurm.cores).")
+JobMemoryOpt = typer.Option(None, "--job-memory", help="Memory of a SLURM worker job, e.g. 64GB (default: "
+                            "jobqueue.slurm.memory).")
+WalltimeOpt = typer.Option(None, "--walltime", help="Walltime of a SLURM worker job, e.g. 12:00:00 (default: "
+                           "jobqueue.slurm.walltime).")
+PartitionOpt = typer.Option(None, "--partition", help="SLURM partition (default: jobqueue.slurm.queue).")
+AccountOpt = typer.Option(None, "--account", help="SLURM account (default: jobqueue.slurm.account).")
+JobDirectiveOpt = typer.Option(None, "--job-directive", help="Extra #SBATCH option of the worker jobs, e.g. "
+                               "--qos=long (repeatable; added to jobqueue.slurm.job-extra-directives).")
+InsecureOpt = typer.Option(False, "--insecure-plain-tcp", help="Let --cluster slurm start a scheduler without "
+                           "TLS beyond loopback: anyone who reaches it can run code as you on every worker.")
+TlsCaOpt = typer.Option(None, "--tls-ca-file", help="CA certificate of a tls:// scheduler (default: "
+                        "distributed.comm.tls.ca-file of your Dask configuration).")
+TlsCertOpt = typer.Option(None, "--tls-cert", help="This client's certificate for a tls:// scheduler (default: "
+                          "distributed.comm.tls.client.cert).")
+TlsKeyOpt = typer.Option(None, "--tls-key", help="This client's private key for a tls:// scheduler (default: "
+                         "distributed.comm.tls.client.key).")
 
 
 def _budget(task_seconds: str | None, task_nodes: str | None) -> dict:
@@ -216,6 +237,22 @@ def run_cmd(
     given_order: bool = typer.Option(False, "--given-order", help="Search the sides in the order given."),
     store_wait: str = typer.Option(None, "--store-wait", help="Seconds to wait for a store that stops answering "
                                    "(a database restart) before stopping the run cleanly (default 300)."),
+    cluster: str = ClusterOpt,
+    jobs: str = JobsOpt,
+    job_cores: str = JobCoresOpt,
+    job_memory: str = JobMemoryOpt,
+    walltime: str = WalltimeOpt,
+    partition: str = PartitionOpt,
+    account: str = AccountOpt,
+    job_directive: list[str] = JobDirectiveOpt,
+    insecure_plain_tcp: bool = InsecureOpt,
+    tls_ca_file: str = TlsCaOpt,
+    tls_cert: str = TlsCertOpt,
+    tls_key: str = TlsKeyOpt,
+    run_file: str = typer.Option(None, "--run-file", help="Keep the run's id in this file; if it holds one "
+                                 "already, resume that run instead (what a requeued batch job does)."),
+    sbatch: str = typer.Option(None, "--sbatch", help="Write a batch script that runs this command as a SLURM job "
+                               "that requeues itself before its walltime, and exit (then: sbatch FILE)."),
     as_json: bool = JsonOpt,
     quiet: bool = QuietOpt,
 ) -> None:
@@ -225,16 +262,24 @@ def run_cmd(
     from foldfarm.shape import parse_shape
 
     values: dict = {}
+    options: dict = {}
+    name = None
     if is_job_file(target):
         job = load_job(target)
         shape_text = job.shape
         values.update(job.settings)
         values.pop("name", None)
+        options = job.options
+        name = job.name
         store = store or job.store
         scheduler = scheduler or job.scheduler
         workers = workers or job.workers
     else:
         shape_text = parse_shape(target).text
+    spec = _cluster_spec(options, scheduler=scheduler, workers=workers, cluster=cluster, jobs=jobs,
+                         job_cores=job_cores, job_memory=job_memory, walltime=walltime, partition=partition,
+                         account=account, job_directive=job_directive, insecure_plain_tcp=insecure_plain_tcp,
+                         tls_ca_file=tls_ca_file, tls_cert=tls_cert, tls_key=tls_key)
     values.update(_budget(task_seconds, task_nodes))
     if tasks is not None:
         values["tasks"] = _whole(tasks, "--tasks", 1)
@@ -243,12 +288,61 @@ def run_cmd(
     if store_wait is not None:
         values["store_wait"] = _seconds(store_wait, "--store-wait")
     settings = Settings.from_dict(values)
-    _head_start(scheduler, workers)
+    if sbatch is not None:
+        _write_batch_script(sbatch, name or f"foldfarm-{shape_text}", spec)
+        return
+    from foldfarm.batch import read_run_file
+
+    known = read_run_file(run_file) if run_file else None
+    if spec.slurm is None:
+        _head_start(spec.scheduler, spec.workers)
     opened = _open_store(store)
     try:
-        _drive(opened, 0, scheduler, workers, as_json, quiet, False, new_shape=shape_text, settings=settings)
+        if known is not None:
+            opened.get_run(known)
+            _drive(opened, known, spec, as_json, quiet, False)
+        else:
+            _drive(opened, 0, spec, as_json, quiet, False, new_shape=shape_text, settings=settings, run_file=run_file)
     finally:
         opened.close()
+
+
+def _cluster_spec(job_options: dict, **given):
+    """The :class:`foldfarm.run.ClusterSpec` of the command-line options over a job file's (one line if they clash)."""
+    from foldfarm.run import cluster_spec
+
+    def pick(key: str, option: str | None = None):
+        value = given.get(key)
+        return value if value not in (None, [], False) else job_options.get(option or key)
+
+    cores = pick("job_cores")
+    return cluster_spec(
+        cluster=pick("cluster"), jobs=pick("jobs"), scheduler=given.get("scheduler"), workers=given.get("workers"),
+        job_cores=_whole(cores, "--job-cores") if isinstance(cores, str) else cores,
+        job_memory=pick("job_memory"), walltime=pick("walltime"), partition=pick("partition"),
+        account=pick("account"), directives=tuple(pick("job_directive", "job_directives") or ()),
+        insecure=bool(given.get("insecure_plain_tcp")), tls_ca_file=pick("tls_ca_file"), tls_cert=pick("tls_cert"),
+        tls_key=pick("tls_key"))
+
+
+def _write_batch_script(path: str, name: str, spec) -> None:
+    """``--sbatch FILE``: the coordinator's batch script for this very command line (without ``--sbatch``)."""
+    from foldfarm.batch import coordinator_script, without_option
+
+    if spec.slurm is None and spec.scheduler is None:
+        fail("--sbatch writes a coordinator job for worker jobs or a scheduler elsewhere: add --cluster slurm "
+             "--jobs N (or --scheduler ADDRESS)")
+    if "run" not in sys.argv:
+        fail("--sbatch writes the command line it was given: use it from a shell")
+    arguments = without_option(sys.argv[sys.argv.index("run") + 1:], "--sbatch")
+    request = spec.slurm
+    text = coordinator_script(sys.executable, arguments, name=name.replace(" ", "-"), cwd=os.getcwd(),
+                              partition=request.partition if request else None,
+                              account=request.account if request else None)
+    _write_file(path, lambda handle: handle.write(text))
+    os.chmod(path, 0o700)
+    typer.echo(f"wrote {path}; submit it with: sbatch {path}   (add --time=... for the coordinator's walltime)",
+               err=True)
 
 
 def _head_start(scheduler: str | None, workers: int | None) -> None:
@@ -283,17 +377,34 @@ def resume_cmd(
     store: str = StoreOpt,
     workers: int = WorkersOpt,
     scheduler: str = SchedulerOpt,
+    cluster: str = ClusterOpt,
+    jobs: str = JobsOpt,
+    job_cores: str = JobCoresOpt,
+    job_memory: str = JobMemoryOpt,
+    walltime: str = WalltimeOpt,
+    partition: str = PartitionOpt,
+    account: str = AccountOpt,
+    job_directive: list[str] = JobDirectiveOpt,
+    insecure_plain_tcp: bool = InsecureOpt,
+    tls_ca_file: str = TlsCaOpt,
+    tls_cert: str = TlsCertOpt,
+    tls_key: str = TlsKeyOpt,
     as_json: bool = JsonOpt,
     quiet: bool = QuietOpt,
     take_over: bool = TakeOverOpt,
 ) -> None:
     """Continue a stopped or crashed run where its store says it stands."""
     run_id = _run_id(run)
-    _head_start(scheduler, workers)
+    spec = _cluster_spec({}, scheduler=scheduler, workers=workers, cluster=cluster, jobs=jobs, job_cores=job_cores,
+                         job_memory=job_memory, walltime=walltime, partition=partition, account=account,
+                         job_directive=job_directive, insecure_plain_tcp=insecure_plain_tcp,
+                         tls_ca_file=tls_ca_file, tls_cert=tls_cert, tls_key=tls_key)
+    if spec.slurm is None:
+        _head_start(spec.scheduler, spec.workers)
     opened = _open_store(store)
     try:
         opened.get_run(run_id)
-        _drive(opened, run_id, scheduler, workers, as_json, quiet, take_over)
+        _drive(opened, run_id, spec, as_json, quiet, take_over)
     finally:
         opened.close()
 

@@ -720,3 +720,122 @@ def eta_seconds(estimated_nodes: float | None, nodes_done: int, rate: float) -> 
     if not estimated_nodes or rate <= 0:
         return None
     return max(0.0, estimated_nodes - nodes_done) / rate if math.isfinite(rate) else None
+
+
+# --------------------------------------------------------------------------
+# Where the workers come from
+# --------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class ClusterSpec:
+    """Where a command's Dask cluster comes from, as the user asked.
+
+    A local cluster of ``workers`` processes (the default), a running
+    scheduler at ``scheduler`` (``tcp://`` or ``tls://``, with ``tls`` files
+    for the latter), or SLURM worker jobs (``slurm``, a
+    :class:`foldfarm.slurm.Request`).
+    """
+
+    scheduler: str | None = None
+    workers: int | None = None
+    slurm: Any = None
+    tls: Any = None
+
+
+def cluster_spec(*, cluster: str | None = None, jobs: str | int | None = None, scheduler: str | None = None,
+                 workers: int | None = None, job_cores: int | None = None, job_memory: str | None = None,
+                 walltime: str | None = None, partition: str | None = None, account: str | None = None,
+                 directives: tuple[str, ...] = (), insecure: bool = False, tls_ca_file: str | None = None,
+                 tls_cert: str | None = None, tls_key: str | None = None) -> ClusterSpec:
+    """Check a combination of cluster options and make the :class:`ClusterSpec`; :class:`UserError` in one line.
+
+    >>> cluster_spec(cluster="slurm", jobs="2:8").slurm.jobs
+    (2, 8)
+    >>> cluster_spec(jobs=4)
+    Traceback (most recent call last):
+    ...
+    foldfarm.errors.UserError: --jobs is for --cluster slurm (the local cluster's count is --workers)
+    """
+    from foldfarm.security import INSECURE_FLAG, TlsFiles
+
+    kind = cluster or "local"
+    if kind not in ("local", "slurm"):
+        raise UserError(f"--cluster must be local or slurm, not {cluster!r}")
+    slurm_only = {"--jobs": jobs, "--job-cores": job_cores, "--job-memory": job_memory, "--walltime": walltime,
+                  "--partition": partition, "--account": account, "--job-directive": directives or None,
+                  INSECURE_FLAG: insecure or None}
+    tls = TlsFiles(*(os.path.expanduser(p) if p else None for p in (tls_ca_file, tls_cert, tls_key)))
+    if kind == "local":
+        given = [name for name, value in slurm_only.items() if value is not None]
+        if given:
+            hint = " (the local cluster's count is --workers)" if given[0] == "--jobs" else ""
+            raise UserError(f"{given[0]} is for --cluster slurm{hint}")
+        if tls.given() and not (scheduler or "").startswith("tls://"):
+            raise UserError("--tls-ca-file, --tls-cert and --tls-key are for a --scheduler tls://HOST:PORT")
+        return ClusterSpec(scheduler=scheduler, workers=workers, tls=tls)
+    from foldfarm.slurm import Request, SlurmError, parse_jobs
+
+    for option, value in (("--scheduler", scheduler), ("--workers", workers)):
+        if value is not None:
+            raise UserError(f"{option} does not go with --cluster slurm, which starts its own scheduler and "
+                            "asks SLURM for --jobs worker jobs")
+    if tls.given():
+        raise UserError("--cluster slurm makes its own certificates (or takes those of distributed.comm.tls in "
+                        "your Dask configuration); --tls-* options are for a --scheduler tls://HOST:PORT")
+    if jobs is None:
+        raise UserError("--cluster slurm needs --jobs N (worker jobs to keep) or --jobs MIN:MAX")
+    if job_cores is not None and (isinstance(job_cores, bool) or job_cores < 1):
+        raise SlurmError(f"--job-cores must be a whole number of at least 1, not {job_cores!r}")
+    request = Request(jobs=parse_jobs(jobs), cores=job_cores, memory=job_memory, walltime=walltime,
+                      partition=partition, account=account, directives=tuple(directives), insecure=insecure)
+    return ClusterSpec(slurm=request)
+
+
+def open_cluster(spec: ClusterSpec, quiet: bool = True, warn: Callable[[str], None] | None = None):
+    """A Dask client for ``spec``: ``(client, cluster_or_None, threads)``.
+
+    ``threads`` is the number of worker threads to plan the window for: those
+    the cluster has now, or, for SLURM, those it will have once its jobs run
+    (tasks wait on the scheduler for workers still queued).  A ``tls://``
+    scheduler gets the certificate files of ``spec.tls`` or of Dask's TLS
+    configuration; a ``tcp://`` one outside loopback gets a warning line
+    (to ``warn``, default standard error) before it is reached.
+    """
+    from foldfarm import security
+
+    if spec.slurm is not None:
+        from distributed import Client
+
+        from foldfarm import slurm
+        from foldfarm.worker import DASK_SETTINGS
+
+        _quiet_logs(quiet)
+        cluster, threads = slurm.start(spec.slurm, DASK_SETTINGS)
+        try:
+            client = Client(cluster)
+        except BaseException:
+            cluster.close()
+            raise
+        return client, cluster, threads
+    tls = None
+    if spec.scheduler:
+        scheme = security.split_address(spec.scheduler)[0]
+        if scheme == "tls":
+            files = security.tls_files(spec.tls.ca_file, spec.tls.cert, spec.tls.key)
+            security.check_tls_files(files, spec.scheduler)
+            tls = security.client_security(files)
+        else:
+            line = security.plain_warning(spec.scheduler)
+            if line:
+                (warn or _to_stderr)(line)
+    client, cluster = connect(spec.scheduler, spec.workers, quiet, security=tls)
+    return client, cluster, max(1, sum(client.nthreads().values()))
+
+
+def _quiet_logs(quiet: bool) -> None:
+    import logging
+
+    if quiet:
+        for name in ("distributed", "distributed.nanny", "distributed.scheduler", "distributed.worker",
+                     "distributed.deploy.adaptive", "dask_jobqueue"):
+            logging.getLogger(name).setLevel(logging.ERROR)
