@@ -151,5 +151,5 @@ class PatientStore:
 
     def _waiting_line(self, exc: StoreError) -> str:
         held = self._holding() if self._holding is not None else 0
-        holds = f"; holding {held:,} results" if held else ""
+        holds = f"; holding {held:,} result{'s' if held != 1 else ''} not yet recorded" if held else ""
         return f"foldfarm: {exc}{holds}; trying again for up to {self.wait:g} s"

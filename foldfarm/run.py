@@ -557,7 +557,9 @@ def _stop(store, client, run_id: int, futures: dict, dispatch: Dispatch | None) 
 
     from foldfarm.store import StoreUnavailable
 
-    previous = signal.signal(signal.SIGINT, signal.SIG_IGN)  # a second Ctrl-C must not cut this short
+    # A second Ctrl-C, or a second SIGTERM (a batch system may send one to every process of the job
+    # and the job script pass on another), must not cut this short.
+    previous = {sig: signal.signal(sig, signal.SIG_IGN) for sig in (signal.SIGINT, signal.SIGTERM)}
     try:
         try:
             client.cancel(list(futures))
@@ -572,7 +574,8 @@ def _stop(store, client, run_id: int, futures: dict, dispatch: Dispatch | None) 
         except StoreUnavailable:
             pass
     finally:
-        signal.signal(signal.SIGINT, previous)
+        for sig, handler in previous.items():
+            signal.signal(sig, handler)
 
 
 def _to_stderr(line: str) -> None:

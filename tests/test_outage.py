@@ -91,7 +91,7 @@ def test_patient_store_waits_says_so_twice_and_gives_up_after_its_wait():
     assert patient.record(7) == 7 and flaky.calls == 6
     assert patient.display_url == flaky.display_url
     assert len(said) == 2, said
-    assert "recording failed" in said[0] and "holding 12 results" in said[0] and "up to 60 s" in said[0]
+    assert "recording failed" in said[0] and "holding 12 results not yet recorded" in said[0] and "up to 60 s" in said[0]
     assert said[1] == "foldfarm: the store answers again after 16 s; continuing"  # 0.5+1+2+4+8
 
     gone = PatientStore(FlakyStore(failures=10**6), wait=20, notice=said.append, sleep=sleep, clock=lambda: clock[0])
