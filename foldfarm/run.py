@@ -374,13 +374,16 @@ def planned(sides: tuple[int, ...], settings: Settings, client=None) -> tuple[li
 
 def drive(store, client, run_id: int, *, holder: str | None = None, take_over: bool = False,
           on_progress: Callable[[Any], None] | None = None,
-          on_notice: Callable[[str], None] | None = None) -> Summary:
+          on_notice: Callable[[str], None] | None = None, threads: int | None = None) -> Summary:
     """Drive run ``run_id`` on ``client`` until nothing is open; record everything in ``store``.
 
     Raises :class:`Stopped` after a clean stop on Ctrl-C, or when the store
     did not answer for the run's ``store_wait`` seconds.  ``on_notice``
     receives the lines that say the store stopped answering and answers
-    again (default: standard error).
+    again (default: standard error).  ``threads`` is the number of worker
+    threads to keep busy when the cluster will have more than it has now
+    (SLURM jobs still queued); the window is never planned for fewer than
+    the cluster has.
     """
     from foldfarm.outage import PatientStore, StoreGone
     from foldfarm.store import TaskResult
@@ -404,7 +407,7 @@ def drive(store, client, run_id: int, *, holder: str | None = None, take_over: b
         store.reset_running(run_id, failed=True)
         if run.state != "running":
             store.set_run_state(run_id, "running")
-        threads = max(1, sum(client.nthreads().values()))
+        threads = max(1, threads or 0, sum(client.nthreads().values()))
         dispatch = Dispatch(capacity=settings.window * threads, last_flush=time.monotonic())
         futures: dict[Any, str] = {}  # future -> bundle key
         from distributed import as_completed
