@@ -827,7 +827,8 @@ def open_cluster(spec: ClusterSpec, quiet: bool = True, warn: Callable[[str], No
     if spec.scheduler:
         scheme = security.split_address(spec.scheduler)[0]
         if scheme == "tls":
-            files = security.tls_files(spec.tls.ca_file, spec.tls.cert, spec.tls.key)
+            given = spec.tls or security.TlsFiles()
+            files = security.tls_files(given.ca_file, given.cert, given.key)
             security.check_tls_files(files, spec.scheduler)
             tls = security.client_security(files)
         else:
