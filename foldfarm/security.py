@@ -135,9 +135,16 @@ def tls_files(ca_file: str | None, cert: str | None, key: str | None, config: di
         import dask
         import distributed  # noqa: F401  (loads Dask's distributed defaults)
 
-        config = dask.config.get("distributed.comm.tls", {})
-    client = config.get("client") or {}
-    return TlsFiles(config.get("ca-file"), client.get("cert"), client.get("key"))
+        def get(key: str):  # Dask takes "ca-file" and "ca_file" (as from DASK_..._CA_FILE) alike
+            return dask.config.get(f"distributed.comm.tls.{key}", None)
+    else:
+        def get(key: str):
+            node = config
+            for part in key.split("."):
+                node = (node or {}).get(part, (node or {}).get(part.replace("-", "_")))
+            return node
+    paths = (get("ca-file"), get("client.cert"), get("client.key"))
+    return TlsFiles(*(os.path.expanduser(p) if p else None for p in paths))
 
 
 def check_tls_files(files: TlsFiles, address: str) -> None:
