@@ -762,7 +762,7 @@ def cluster_spec(*, cluster: str | None = None, jobs: str | int | None = None, s
     ...
     foldfarm.errors.UserError: --jobs is for --cluster slurm (the local cluster's count is --workers)
     """
-    from foldfarm.security import INSECURE_FLAG, TlsFiles
+    from foldfarm.security import INSECURE_FLAG, TlsFiles, check_tls_files, split_address, tls_files
 
     kind = cluster or "local"
     if kind not in ("local", "slurm"):
@@ -776,8 +776,15 @@ def cluster_spec(*, cluster: str | None = None, jobs: str | int | None = None, s
         if given:
             hint = " (the local cluster's count is --workers)" if given[0] == "--jobs" else ""
             raise UserError(f"{given[0]} is for --cluster slurm{hint}")
-        if tls.given() and not (scheduler or "").startswith("tls://"):
+        scheme = split_address(scheduler)[0] if scheduler else None
+        if scheme not in (None, "tcp", "tls"):
+            raise UserError(f"{scheduler!r} is not a scheduler address: write tls://HOST:PORT (or tcp://HOST:PORT "
+                            "on loopback), for example tls://head.halvorsen.example:8786")
+        if tls.given() and scheme != "tls":
             raise UserError("--tls-ca-file, --tls-cert and --tls-key are for a --scheduler tls://HOST:PORT")
+        if scheme == "tls":
+            tls = tls_files(tls.ca_file, tls.cert, tls.key)
+            check_tls_files(tls, scheduler)
         return ClusterSpec(scheduler=scheduler, workers=workers, tls=tls)
     from foldfarm.slurm import Request, SlurmError, parse_jobs
 
