@@ -6,7 +6,7 @@
 #SBATCH --requeue
 #SBATCH --signal=B:TERM@300
 #SBATCH --open-mode=append
-#SBATCH --output=foldfarm-%j.out
+#SBATCH --output=%x-%j.out
 #SBATCH --ntasks=1
 #SBATCH --cpus-per-task=1
 

@@ -35,7 +35,7 @@ _TEMPLATE = """\
 #SBATCH --requeue
 #SBATCH --signal=B:TERM@{stop_seconds}
 #SBATCH --open-mode=append
-#SBATCH --output={name}-%j.out
+#SBATCH --output=%x-%j.out
 #SBATCH --ntasks=1
 #SBATCH --cpus-per-task=1
 {directives}
