@@ -177,7 +177,8 @@ def slurm_config() -> dict:
         import dask_jobqueue  # noqa: F401  (loads jobqueue's defaults into Dask's configuration)
     except ImportError:
         raise SlurmError("--cluster slurm needs dask-jobqueue: pip install 'foldfarm[slurm]'") from None
-    return dict(dask.config.get("jobqueue.slurm", {}))
+    # Keys set through the environment (DASK_JOBQUEUE__SLURM__SCHEDULER_OPTIONS) are spelled with "_".
+    return {key.replace("_", "-"): value for key, value in dask.config.get("jobqueue.slurm", {}).items()}
 
 
 def tls_configured() -> bool:
