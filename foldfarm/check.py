@@ -263,8 +263,14 @@ def certificate(side_order: str, entries: Iterable[tuple[Steps, str, int]]) -> s
     return "sha256:" + digest.hexdigest()
 
 
-def certificate_check(digest: str, stored: str | None) -> dict:
-    """A newly computed digest against the one stored with the run (if any)."""
+def certificate_check(digest: str, stored: str | None, finished: bool = True) -> dict:
+    """A newly computed digest against the one stored with the run (if any).
+
+    >>> certificate_check("sha256:ab", None, finished=False)["detail"]
+    'sha256:ab (run not finished: the digest of the tasks so far, not stored)'
+    """
+    if stored is None and not finished:
+        return outcome(None, f"{digest} (run not finished: the digest of the tasks so far, not stored)", digest=digest)
     if stored is None:
         return outcome(True, f"{digest} (first verification: stored with the run)", digest=digest)
     if stored != digest:
@@ -621,10 +627,15 @@ def transpose_check(total: int, other_run: int, other_order_text: str, other_tot
     return outcome(True, f"run {other_run} counted {other_total} as {other_order_text} ({other_state})", **extra)
 
 
-def _transpose(store, run, client, total: int, previous: dict | None) -> dict:
-    """Count the map again with its sides in another order (or reuse the run that did), compare."""
-    from foldfarm import run as runner
+#: Counts a map as a run of its own and says how that ended: ``recount(shape, settings, run_id)``
+#: continues run ``run_id`` (or, when None, creates one of ``shape`` with run ``settings``) and
+#: returns ``(run id, total or None, state)``.  The caller supplies it with a cluster behind it
+#: (:func:`foldfarm.run.recounter`), so the checks never reach for a cluster themselves.
+Recount = Callable[[str, dict, int | None], tuple[int, int | None, str]]
 
+
+def _transpose(store, run, recount: Recount | None, total: int, previous: dict | None) -> dict:
+    """Count the map again with its sides in another order (or reuse the run that did), compare."""
     sides = _sides(run.side_order)
     other = other_order(sides)
     if other is None:
@@ -640,16 +651,12 @@ def _transpose(store, run, client, total: int, previous: dict | None) -> dict:
             reuse = None
         elif found.state in FINISHED:
             return transpose_check(total, reuse, text, found.total, found.state)
-        elif client is None:
+        elif recount is None:
             return outcome(None, f"run {reuse} ({text}) is {found.state}; verify --transpose finishes it", run=reuse)
-    if client is None:
+    if recount is None:
         return outcome(None, "skipped: no cluster")
-    if reuse is None:
-        threads = max(1, sum(client.nthreads().values()))
-        settings = runner.Settings.from_dict({**run.settings, "order": "given"})
-        reuse = runner.create(store, text, settings, threads, client)
-    summary = runner.drive(store, client, reuse)
-    return transpose_check(total, reuse, text, summary.count, summary.state)
+    reuse, other_total, state = recount(text, {**run.settings, "order": "given"}, reuse)
+    return transpose_check(total, reuse, text, other_total, state)
 
 
 # --------------------------------------------------------------------------
@@ -667,14 +674,16 @@ def _on_a_worker(client, sides: tuple[int, ...]) -> Callable[[list[Steps], list[
     return lambda nodes, trusted: client.submit(children, sides, nodes, trusted, pure=False).result()
 
 
-def verify_run(store, run_id: int, *, client=None, audit_fraction: float | None = None, transpose: bool = False,
-               seed: int = 0) -> dict:
+def verify_run(store, run_id: int, *, client=None, audit_fraction: float | None = None,
+               recount: Recount | None = None, seed: int = 0) -> dict:
     """Run every check on run ``run_id``; store the outcome with a finished run; return the checks.
 
-    ``client`` (a Dask client) runs the audit and, with ``transpose``, the
-    run in another side order; without one they are reported skipped.  With
-    a client the kernel's part of the completeness check runs on a worker
-    too, so this process never loads the kernel.
+    ``client`` (a Dask client) runs the audit; without one it is reported
+    skipped.  With a client the kernel's part of the completeness check runs
+    on a worker too, so this process never loads the kernel.  ``recount``
+    (see :data:`Recount`), when given, counts the map in another side order
+    for the ``transpose`` check; a run counted that way before is compared
+    again without it.
     ``audit_fraction`` defaults to the run's ``audit`` setting; ``seed``
     picks the audited tasks.  A run that is not finished is checked but
     nothing is stored.
@@ -711,12 +720,12 @@ def verify_run(store, run_id: int, *, client=None, audit_fraction: float | None 
     previous = (run.checks or {}).get("transpose")
     if not finished:
         checks["transpose"] = outcome(None, "run not finished: no total to compare yet")
-    elif transpose or (previous or {}).get("run") is not None:
-        checks["transpose"] = _transpose(store, run, client if transpose else None, scan.total, previous)
+    elif recount is not None or (previous or {}).get("run") is not None:
+        checks["transpose"] = _transpose(store, run, recount, scan.total, previous)
     else:
         checks["transpose"] = outcome(None, "not asked (verify --transpose counts the map in another side order)")
     digest = certificate(run.side_order, scan.entries)
-    checks["certificate"] = certificate_check(digest, run.certificate)
+    checks["certificate"] = certificate_check(digest, run.certificate, finished)
     if finished:
         store.set_verification(run_id, passed(checks), checks=checks,
                                certificate=digest if run.certificate is None else None)

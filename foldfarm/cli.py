@@ -39,7 +39,7 @@ def fail(message: str) -> None:
 
 
 def user_errors(fn: Callable) -> Callable:
-    """Turn :class:`UserError` raised by a command into :func:`fail`."""
+    """Turn :class:`UserError` raised by a command into :func:`fail`, and Ctrl-C into one line and exit 130."""
 
     @functools.wraps(fn)
     def wrapper(*args, **kwargs):
@@ -47,6 +47,9 @@ def user_errors(fn: Callable) -> Callable:
             return fn(*args, **kwargs)
         except UserError as exc:
             fail(str(exc))
+        except KeyboardInterrupt:  # Ctrl-C outside a run's own clean stop (a run prints its resume line)
+            typer.echo("foldfarm: interrupted", err=True)
+            raise typer.Exit(130) from None
 
     return wrapper
 
@@ -59,7 +62,7 @@ def emit_json(obj: dict) -> None:
 @app.command("count", context_settings={"ignore_unknown_options": True})
 @user_errors
 def count_cmd(
-    shape: str = typer.Argument(..., help="Map shape, e.g. 3x5 or 2x2x2."),
+    shape: str = typer.Argument(..., metavar="SHAPE", help="Map shape, e.g. 3x5 or 2x2x2."),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object."),
     given_order: bool = typer.Option(
         False, "--given-order", help="Search the sides in the order given instead of the fastest order."
@@ -146,10 +149,11 @@ def _seconds(text: str, option: str) -> float:
     return value
 
 
-def _open_store(url: str | None):
+def _open_store(url: str | None, create: bool = False):
+    """The store at ``url``; only the commands that start runs (``create``) may make a new one."""
     from foldfarm.store import Store
 
-    return Store(url)
+    return Store(url, create=create)
 
 
 def _show_progress(quiet: bool):
@@ -179,57 +183,93 @@ def _dashboard_hint(cluster) -> str:
     return " (its graphs need bokeh: pip install 'foldfarm[dashboard]')"
 
 
-def _drive(store, run_id: int, scheduler, workers, as_json: bool, quiet: bool, take_over: bool,
-           new_shape: str | None = None, settings=None) -> None:
+def _drive(store, run_id: int, spec, identity: dict | None, as_json: bool, quiet: bool, take_over: bool,
+           new_shape: str | None = None, settings=None, run_file: str | None = None) -> None:
+    """Start or join the cluster of ``spec``, plan ``new_shape`` if given, drive the run; print the outcome.
+
+    With ``run_file``, the id of a new run is kept there as soon as it is planned.
+    """
     import signal
 
+    from foldfarm import check
     from foldfarm import run as runner
+    from foldfarm.report import verdict_lines
 
     def terminate(signum, frame):  # a batch system's SIGTERM stops the run as cleanly as Ctrl-C
         raise KeyboardInterrupt
 
     signal.signal(signal.SIGTERM, terminate)
-    client, cluster = runner.connect(scheduler, workers)
+    holder = runner.holder_name()
+    if new_shape is None:  # become the run's driver before a cluster starts for nothing
+        _take_lease(store, run_id, holder, take_over)
     try:
-        if new_shape is not None:  # planned on a worker, which has the kernel loaded
-            run_id = runner.create(store, new_shape, settings, max(1, sum(client.nthreads().values())), client)
-        if not (quiet or as_json):
-            typer.echo(f"dashboard: {client.dashboard_link}{_dashboard_hint(cluster)}", err=True)
-            if new_shape is not None:
-                typer.echo(f"run {run_id}: {new_shape} planned in {store.display_url}", err=True)
-        show, live = _show_progress(quiet or as_json)
+        client = cluster = None
         try:
-            if live is not None:
-                with live:
-                    summary = runner.drive(store, client, run_id, take_over=take_over, on_progress=show)
+            client, cluster, threads = runner.open_cluster(spec, identity=identity)
+            if new_shape is not None:  # planned on a worker, which has the kernel loaded
+                run_id = runner.create(store, new_shape, settings, threads, client)
+                if run_file:
+                    from foldfarm.batch import write_run_file
+
+                    write_run_file(run_file, run_id)
+            if not (quiet or as_json):
+                if "dashboard" in client.scheduler_info().get("services", {}):  # a scheduler may run without one
+                    typer.echo(f"dashboard: {client.dashboard_link}{_dashboard_hint(cluster)}", err=True)
+                if new_shape is not None:
+                    typer.echo(f"run {run_id}: {new_shape} planned in {store.display_url}", err=True)
+            show, live = _show_progress(quiet or as_json)
+            with live if live is not None else nullcontext():
+                summary = runner.drive(store, client, run_id, holder=holder, take_over=take_over, on_progress=show,
+                                       threads=threads)
+        except (runner.Stopped, KeyboardInterrupt):  # Ctrl-C in the loop, or before it began
+            if not run_id:
+                typer.echo("foldfarm: interrupted before the run was planned; nothing was stored", err=True)
             else:
-                summary = runner.drive(store, client, run_id, take_over=take_over)
-        except runner.Stopped:
-            typer.echo(f"foldfarm: stopped run {run_id}; resume with: foldfarm resume {run_id} "
-                       f"--store {store.display_url}", err=True)
-            raise typer.Exit(130)
+                typer.echo(f"foldfarm: stopped run {run_id}; resume with: foldfarm resume {run_id} "
+                           f"--store {store.display_url}", err=True)
+            raise typer.Exit(130) from None
+        finally:
+            if client is not None:
+                runner.disconnect(client, cluster)
     finally:
-        runner.disconnect(client, cluster)
+        if new_shape is None:  # drive gave it up already, unless it never got that far
+            runner.release_lease(store, run_id, holder)
+    checked = summary.checks is not None and summary.count is not None
     if as_json:
-        emit_json(summary.as_json())
+        emit_json({**summary.as_json(), "passed": check.passed(summary.checks) if checked else None})
     else:
         typer.echo(summary.count if summary.count is not None else f"run {summary.run}: {summary.state}")
         if not quiet:
             typer.echo(f"run {summary.run}: {summary.shape}, {summary.tasks:,} tasks done ({summary.splits:,} split), "
                        f"{summary.nodes:,} nodes, {summary.core_seconds:,.1f} core-s, {summary.seconds:,.1f} s",
                        err=True)
+        if checked:
+            typer.echo("\n".join(verdict_lines(summary.run, summary.state, summary.checks)), err=True)
     if summary.count is None:
         typer.echo(f"foldfarm: run {summary.run} is not finished: {summary.failed:,} tasks failed "
                    f"(foldfarm resume {summary.run} runs them again)", err=True)
         raise typer.Exit(1)
+    if checked and not check.passed(summary.checks):
+        raise typer.Exit(1)
+
+
+def _take_lease(store, run_id: int, holder: str, take_over: bool) -> None:
+    """Become the driver of run ``run_id``, or say in one line who drives it and how to take over."""
+    from foldfarm import run as runner
+    from foldfarm.store import LeaseHeld
+
+    try:
+        runner.take_lease(store, run_id, holder, force=take_over)
+    except LeaseHeld as exc:
+        fail(f"{exc} (foldfarm resume {run_id} --take-over)")
 
 
 @app.command("run", context_settings={"ignore_unknown_options": True})
 @user_errors
 def run_cmd(
-    target: str = typer.Argument(..., help="Map shape (e.g. 3x8) or job file (e.g. jobs/tern-3x8.toml)."),
+    target: str = typer.Argument(..., metavar="SHAPE|JOB.toml", help="Map shape (e.g. 3x8) or job file (e.g. jobs/tern-3x8.toml)."),
     store: str = StoreOpt,
-    workers: int = WorkersOpt,
+    workers: str = WorkersOpt,
     scheduler: str = SchedulerOpt,
     task_seconds: str = TaskSecondsOpt,
     task_nodes: str = TaskNodesOpt,
@@ -261,6 +301,7 @@ def run_cmd(
     from foldfarm.run import Settings
     from foldfarm.shape import parse_shape
 
+    workers = _whole(workers, "--workers", 1)
     values: dict = {}
     options: dict = {}
     name = None
@@ -273,7 +314,7 @@ def run_cmd(
         name = job.name
         store = store or job.store
         scheduler = scheduler or job.scheduler
-        workers = workers or job.workers
+        workers = job.workers if workers is None else workers
     else:
         shape_text = parse_shape(target).text
     spec = _cluster_spec(options, scheduler=scheduler, workers=workers, cluster=cluster, jobs=jobs,
@@ -294,15 +335,15 @@ def run_cmd(
     from foldfarm.batch import read_run_file
 
     known = read_run_file(run_file) if run_file else None
-    if spec.slurm is None:
-        _head_start(spec.scheduler, spec.workers)
-    opened = _open_store(store)
+    identity = _cluster_ready(spec)
+    opened = _open_store(store, create=True)
     try:
-        if known is not None:
+        if known is not None:  # a requeued batch job: the run it started before
             opened.get_run(known)
-            _drive(opened, known, spec, as_json, quiet, False)
+            _drive(opened, known, spec, identity, as_json, quiet, False)
         else:
-            _drive(opened, 0, spec, as_json, quiet, False, new_shape=shape_text, settings=settings, run_file=run_file)
+            _drive(opened, 0, spec, identity, as_json, quiet, False, new_shape=shape_text, settings=settings,
+                   run_file=run_file)
     finally:
         opened.close()
 
@@ -345,23 +386,40 @@ def _write_batch_script(path: str, name: str, spec) -> None:
                err=True)
 
 
-def _head_start(scheduler: str | None, workers: int | None) -> None:
-    """With the arguments checked and no scheduler given, start the local workers' fork server now.
+def _cluster_ready(spec) -> dict | None:
+    """Check the cluster of ``spec`` before the store opens; return a scheduler's identity (None: no scheduler yet).
 
-    It loads Dask and the kernel (about a second, on the other core) while
-    this process opens the store, imports Dask and starts the scheduler:
-    0.25 s off the start of a local run (3x8 runs, 8 each, median 1.98 s
-    started after the store opened, 1.74 s before; :func:`foldfarm.run.start_fork_server`).
-    Not before the arguments are checked: the server holds this process's
-    stdout and stderr until it has loaded, so a command that fails keeps a
-    caller who reads its output through a pipe waiting that long (it does
-    for a bad store URL or an unknown run id).
+    A scheduler is probed now (:func:`foldfarm.run.probe_scheduler`), so a
+    wrong address ends in one line with nothing written to the store.  For
+    a local cluster, with ``--workers`` checked, the workers' fork server
+    starts now: it loads Dask and the kernel (about a second, on the other
+    core) while this process opens the store, imports Dask and starts the
+    scheduler: 0.25 s off the start of a local run (3x8 runs, 8 each,
+    median 1.98 s started after the store opened, 1.74 s before;
+    :func:`foldfarm.run.start_fork_server`).  Not before the arguments are
+    checked: the server holds this process's stdout and stderr until it has
+    loaded, so a command that fails keeps a caller who reads its output
+    through a pipe waiting that long (it does for a bad store URL or an
+    unknown run id).  A ``tcp://`` scheduler outside loopback gets its
+    warning line before it is reached.  SLURM is checked as its cluster
+    starts (:func:`foldfarm.slurm.start`).
     """
-    if scheduler is None:
-        from foldfarm.run import local_workers, start_fork_server
+    from foldfarm.run import local_workers, probe_scheduler, scheduler_security, start_fork_server
+    from foldfarm.security import plain_warning
 
-        local_workers(workers)  # the last argument to check
-        start_fork_server()
+    if spec.slurm is not None:
+        return None
+    if spec.scheduler is not None:
+        if spec.workers is not None:
+            fail("--workers sets the size of a local cluster; a scheduler brings its own workers: give one or "
+                 "the other")
+        warning = plain_warning(spec.scheduler)
+        if warning:
+            typer.echo(warning, err=True)
+        return probe_scheduler(spec.scheduler, security=scheduler_security(spec))
+    local_workers(spec.workers)  # the last argument to check
+    start_fork_server()
+    return None
 
 
 def _run_id(text: str) -> int:
@@ -373,9 +431,9 @@ def _run_id(text: str) -> int:
 @app.command("resume")
 @user_errors
 def resume_cmd(
-    run: str = typer.Argument(..., help="Run id (see foldfarm status)."),
+    run: str = typer.Argument(..., metavar="RUN", help="Run id (see foldfarm status)."),
     store: str = StoreOpt,
-    workers: int = WorkersOpt,
+    workers: str = WorkersOpt,
     scheduler: str = SchedulerOpt,
     cluster: str = ClusterOpt,
     jobs: str = JobsOpt,
@@ -395,16 +453,16 @@ def resume_cmd(
 ) -> None:
     """Continue a stopped or crashed run where its store says it stands."""
     run_id = _run_id(run)
+    workers = _whole(workers, "--workers", 1)
     spec = _cluster_spec({}, scheduler=scheduler, workers=workers, cluster=cluster, jobs=jobs, job_cores=job_cores,
                          job_memory=job_memory, walltime=walltime, partition=partition, account=account,
                          job_directive=job_directive, insecure_plain_tcp=insecure_plain_tcp,
                          tls_ca_file=tls_ca_file, tls_cert=tls_cert, tls_key=tls_key)
-    if spec.slurm is None:
-        _head_start(spec.scheduler, spec.workers)
+    identity = _cluster_ready(spec)
     opened = _open_store(store)
     try:
         opened.get_run(run_id)
-        _drive(opened, run_id, spec, as_json, quiet, take_over)
+        _drive(opened, run_id, spec, identity, as_json, quiet, take_over)
     finally:
         opened.close()
 
@@ -412,7 +470,7 @@ def resume_cmd(
 @app.command("status")
 @user_errors
 def status_cmd(
-    run: str = typer.Argument(None, help="Run id: show that run in detail (default: list the runs)."),
+    run: str = typer.Argument(None, metavar="[RUN]", help="Run id: show that run in detail (default: list the runs)."),
     store: str = StoreOpt,
     as_json: bool = JsonOpt,
 ) -> None:
@@ -487,9 +545,9 @@ def _run_status(run_id: int, store: str | None, as_json: bool) -> None:
 @app.command("verify")
 @user_errors
 def verify_cmd(
-    run: str = typer.Argument(..., help="Run id (see foldfarm status)."),
+    run: str = typer.Argument(..., metavar="RUN", help="Run id (see foldfarm status)."),
     store: str = StoreOpt,
-    workers: int = WorkersOpt,
+    workers: str = WorkersOpt,
     scheduler: str = SchedulerOpt,
     audit: str = typer.Option(None, "--audit", help="Fraction of done tasks to count again on another worker "
                               "(default: the run's setting, 0.01; 0: no audit, no cluster)."),
@@ -505,6 +563,7 @@ def verify_cmd(
     from foldfarm import run as runner
 
     run_id = _run_id(run)
+    workers = _whole(workers, "--workers", 1)
     chosen_seed = _whole(seed, "--seed")
     chosen_seed = secrets.randbelow(2**31) if chosen_seed is None else chosen_seed
     opened = _open_store(store)
@@ -513,8 +572,8 @@ def verify_cmd(
         fraction = check.parse_fraction(info.settings.get("audit", check.DEFAULT_AUDIT) if audit is None else audit)
         # Only audits and the transposed run need a cluster.
         with (runner.connected(scheduler, workers) if fraction > 0 or transpose else nullcontext()) as client:
-            checks = check.verify_run(opened, run_id, client=client, audit_fraction=fraction, transpose=transpose,
-                                      seed=chosen_seed)
+            checks = check.verify_run(opened, run_id, client=client, audit_fraction=fraction, seed=chosen_seed,
+                                      recount=runner.recounter(opened, client) if transpose else None)
         info = opened.get_run(run_id)
     finally:
         opened.close()
@@ -531,8 +590,7 @@ def verify_cmd(
         if info.state not in check.FINISHED:
             typer.echo(f"run {run_id}: {info.state}, not finished: nothing stored")
         else:
-            failed = [name for name, c in checks.items() if c["ok"] is False]
-            typer.echo(f"run {run_id}: {info.state}" + (f" ({', '.join(failed)} failed)" if failed else ""))
+            typer.echo(report.verdict_line(run_id, info.state, checks))
     if not ok:
         raise typer.Exit(1)
 
@@ -540,7 +598,7 @@ def verify_cmd(
 @app.command("tasks")
 @user_errors
 def tasks_cmd(
-    run: str = typer.Argument(..., help="Run id (see foldfarm status)."),
+    run: str = typer.Argument(..., metavar="RUN", help="Run id (see foldfarm status)."),
     store: str = StoreOpt,
     state: list[str] = typer.Option(None, "--state", help="Only tasks in this state (repeatable): pending, "
                                     "running, done, split, failed."),
@@ -568,7 +626,7 @@ def tasks_cmd(
 @app.command("export")
 @user_errors
 def export_cmd(
-    run: str = typer.Argument(..., help="Run id (see foldfarm status)."),
+    run: str = typer.Argument(..., metavar="RUN", help="Run id (see foldfarm status)."),
     store: str = StoreOpt,
     fmt: str = typer.Option("json", "--format", help="json (the run, its audits and tasks) or csv (one table)."),
     as_json: bool = typer.Option(False, "--json", help="Same as --format json."),
@@ -612,12 +670,12 @@ def export_cmd(
 @app.command("sweep")
 @user_errors
 def sweep_cmd(
-    family: str = typer.Argument(..., help="Family of shapes: a shape with N for the varying side (3xN, NxN) "
+    family: str = typer.Argument(..., metavar="FAMILY", help="Family of shapes: a shape with N for the varying side (3xN, NxN) "
                                  "or S^N for N sides of S (2^N)."),
     first: str = typer.Option("1", "--from", help="First index N."),
     last: str = typer.Option(..., "--to", help="Last index N."),
     store: str = StoreOpt,
-    workers: int = WorkersOpt,
+    workers: str = WorkersOpt,
     scheduler: str = SchedulerOpt,
     task_seconds: str = TaskSecondsOpt,
     task_nodes: str = TaskNodesOpt,
@@ -631,13 +689,14 @@ def sweep_cmd(
     from foldfarm import sweep
 
     shapes = sweep.members(sweep.parse_family(family), _whole(first, "--from", 1), _whole(last, "--to", 1))
+    workers = _whole(workers, "--workers", 1)
     settings = runner.Settings.from_dict(_budget(task_seconds, task_nodes))
 
     def show(row) -> None:
         if not (quiet or as_json):
             typer.echo(f"N={row.index} {row.shape}: {row.count} (run {row.run}, {row.state})", err=True)
 
-    opened = _open_store(store)
+    opened = _open_store(store, create=True)
     try:
         with runner.connected(scheduler, workers) as client:
             rows = sweep.sweep(opened, client, shapes, settings, fresh=fresh, on_row=show)
@@ -656,7 +715,7 @@ def sweep_cmd(
 @app.command("estimate", context_settings={"ignore_unknown_options": True})
 @user_errors
 def estimate_cmd(
-    shape: str = typer.Argument(..., help="Map shape, e.g. 8x8."),
+    shape: str = typer.Argument(..., metavar="SHAPE", help="Map shape, e.g. 8x8."),
     probes: str = typer.Option(None, "--probes", help="Random probes in all (default 5,000,000)."),
     seed: str = typer.Option("0", "--seed", help="Seed of the probes: the same seed gives the same estimate."),
     cores: str = typer.Option(None, "--cores", help="Cores to project the wall time for (default: this machine's)."),
@@ -684,18 +743,55 @@ def estimate_cmd(
             typer.echo(line)
 
 
+def usage_line(exc) -> str:
+    """A click usage error (unknown option, bad value, missing argument) as one line.
+
+    Commands that take a shape accept unknown options as arguments (so that
+    ``-2x3`` reaches the shape parser, which explains it); a misspelt option
+    then arrives as an extra argument, and is named as the option it is.
+    """
+    import difflib
+    import re
+
+    ctx = exc.ctx
+    where = ctx.command_path if ctx is not None else "foldfarm"
+    message = " ".join(exc.format_message().split())
+    extra = re.fullmatch(r"Got unexpected extra argument(?:s|\(s\))? \((-\S*).*\)", message)
+    if extra and ctx is not None:
+        known = [o for p in ctx.command.params for o in p.opts if o.startswith("--")]
+        close = difflib.get_close_matches(extra[1].split("=")[0], known, n=1)
+        message = f"No such option: {extra[1]}" + (f" (did you mean {close[0]}?)" if close else "")
+    return f"{message.rstrip('.')}; see {where} --help"
+
+
 def main() -> None:
     """Console-script entry point."""
+    try:  # typer 0.29 and later carry their own copy of click
+        from typer._click import exceptions as clicks
+    except ImportError:
+        from click import exceptions as clicks
+
     try:
-        app()
+        code = app(standalone_mode=False)
+    except clicks.NoArgsIsHelpError as exc:  # a bare command: its help, as typer shows it
+        from typer import rich_utils
+
+        rich_utils.rich_format_error(exc)
+        code = 2
+    except clicks.UsageError as exc:
+        typer.echo(f"foldfarm: {usage_line(exc)}", err=True)
+        code = 2
+    except clicks.Abort:
+        code = 130
     except KeyboardInterrupt:
         typer.echo("foldfarm: interrupted", err=True)
-        sys.exit(130)
+        code = 130
     finally:
         # Every command has written and closed everything by now.  Freezing the collector's
         # objects spares the interpreter's final collections over everything numba, Dask and
         # SQLAlchemy created: exit takes milliseconds instead of about 0.7 s.
         gc.freeze()
+    sys.exit(code if isinstance(code, int) else 0)
 
 
 if __name__ == "__main__":

@@ -8,6 +8,8 @@ the kernel loaded (about 1 CPU-second a worker otherwise, or a full
 compile each on a machine whose numba cache is still empty, every worker
 compiling the same code at once).
 
+The workers also ignore SIGINT (see below).
+
 Importing this module has that side effect on purpose, and nothing else
 imports it.  It never raises: a fork server whose preload failed would
 take every worker start down with it, and each worker loads the kernel
@@ -15,6 +17,13 @@ itself anyway (:class:`foldfarm.worker.ReadyWorker`).
 """
 
 import gc
+import signal
+
+# A terminal's Ctrl-C reaches its whole foreground process group, local workers included; the
+# coordinator alone stops the run (it cancels, records and prints how to resume), so workers forked
+# from here ignore SIGINT (the fork server restores, in each child, the handlers it found after its
+# preload).  Without this each worker died with a KeyboardInterrupt traceback on the terminal.
+signal.signal(signal.SIGINT, signal.SIG_IGN)
 
 try:
     import distributed  # noqa: F401  (what the worker processes run)

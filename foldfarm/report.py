@@ -111,14 +111,38 @@ def _mark(ok) -> str:
     return {True: "ok", False: "FAIL", None: "-"}[ok]
 
 
+def _names(checks: dict) -> list[str]:
+    """Check names in the order they are reported (stored JSON sorts its keys)."""
+    from foldfarm.check import CHECKS
+
+    return [n for n in CHECKS if n in checks] + sorted(set(checks) - set(CHECKS))
+
+
 def check_lines(checks: dict | None) -> list[str]:
     """One line per check: mark, name, detail."""
     if not checks:
         return ["  not verified yet (foldfarm verify RUN)"]
-    from foldfarm.check import CHECKS
+    return [f"  {_mark(checks[n].get('ok')):<4} {n:<13} {checks[n].get('detail', '')}" for n in _names(checks)]
 
-    names = [n for n in CHECKS if n in checks] + sorted(set(checks) - set(CHECKS))  # stored JSON sorts keys
-    return [f"  {_mark(checks[n].get('ok')):<4} {n:<13} {checks[n].get('detail', '')}" for n in names]
+
+def verdict_line(run_id: int, state: str, checks: dict) -> str:
+    """The outcome of a run's checks in one line: the checks that failed, else those that passed.
+
+    >>> verdict_line(3, "verified", {"total": {"ok": True}, "audit": {"ok": None}, "published": {"ok": True}})
+    'run 3: verified: total, published passed'
+    >>> verdict_line(3, "suspect", {"total": {"ok": True}, "divisibility": {"ok": False}})
+    'run 3: suspect: divisibility failed'
+    """
+    failed = [n for n in _names(checks) if checks[n].get("ok") is False]
+    if failed:
+        return f"run {run_id}: {state}: {', '.join(failed)} failed"
+    return f"run {run_id}: {state}: {', '.join(n for n in _names(checks) if checks[n].get('ok'))} passed"
+
+
+def verdict_lines(run_id: int, state: str, checks: dict) -> list[str]:
+    """What a finished run closes with: :func:`verdict_line`, then each failed check with its detail."""
+    failed = {n: c for n, c in checks.items() if c.get("ok") is False}
+    return [verdict_line(run_id, state, checks)] + (check_lines(failed) if failed else [])
 
 
 def detail_lines(d: dict, now: datetime | None = None) -> list[str]:

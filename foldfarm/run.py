@@ -358,6 +358,19 @@ def create(store, shape_text: str, settings: Settings, threads: int, client=None
     return run_id
 
 
+def recounter(store, client):
+    """A :data:`foldfarm.check.Recount` that counts on ``client`` as runs in ``store`` (for ``verify --transpose``)."""
+
+    def recount(shape_text: str, settings: dict, run_id: int | None) -> tuple[int, int | None, str]:
+        if run_id is None:
+            threads = max(1, sum(client.nthreads().values()))
+            run_id = create(store, shape_text, Settings.from_dict(settings), threads, client)
+        summary = drive(store, client, run_id)
+        return run_id, summary.count, summary.state
+
+    return recount
+
+
 def planned(sides: tuple[int, ...], settings: Settings, client=None) -> tuple[list[str], float]:
     """The deterministic plan of a run (prefix texts) and a quick estimate of its search nodes (for ETAs).
 
@@ -502,10 +515,15 @@ def drive(store, client, run_id: int, *, holder: str | None = None, take_over: b
             heart.stop()
         return finish(store, run_id, started, client)
     finally:
-        try:
-            raw.release_lease(run_id, holder)
-        except Exception:  # the lease expires on its own; never mask the real outcome
-            pass
+        release_lease(raw, run_id, holder)
+
+
+def release_lease(store, run_id: int, holder: str) -> None:
+    """Give up the run's lease if ``holder`` has it; a store error here never masks the real outcome."""
+    try:
+        store.release_lease(run_id, holder)
+    except Exception:  # noqa: BLE001 - the lease expires on its own
+        pass
 
 
 class Heartbeat:
@@ -617,8 +635,13 @@ class SchedulerError(UserError):
     """The Dask scheduler cannot be reached."""
 
 
-def connect(scheduler: str | None, workers: int | None, quiet: bool = True):
+def connect(scheduler: str | None, workers: int | None, quiet: bool = True, identity: dict | None = None,
+            security=None):
     """A Dask client: to ``scheduler`` if given, else to a new local cluster.
+
+    A scheduler is probed first (:func:`probe_scheduler`) unless its
+    ``identity`` from an earlier probe is given; ``security`` (a Dask
+    ``Security``) is what a ``tls://`` scheduler needs.
 
     The local cluster has ``workers`` single-threaded worker processes (default:
     one per core) bound to 127.0.0.1, with :data:`foldfarm.worker.DASK_SETTINGS`;
@@ -633,32 +656,36 @@ def connect(scheduler: str | None, workers: int | None, quiet: bool = True):
 
     from foldfarm.worker import DASK_SETTINGS, ReadyWorker
 
-    if quiet:
-        for name in ("distributed", "distributed.nanny", "distributed.scheduler", "distributed.worker"):
-            logging.getLogger(name).setLevel(logging.ERROR)
+    _quiet_logs(quiet)
     if scheduler:
-        probe_scheduler(scheduler)
+        if identity is None:
+            probe_scheduler(scheduler, security=security)
         try:
-            return Client(scheduler, timeout="10s"), None
+            return Client(scheduler, timeout="10s", security=security), None
         except (OSError, TimeoutError, ValueError) as exc:
             raise SchedulerError(f"cannot reach the Dask scheduler at {scheduler}: {_first_line(exc)}") from None
     n = local_workers(workers)
     settings = dict(DASK_SETTINGS)
     if start_fork_server():
         settings["distributed.worker.multiprocessing-method"] = "forkserver"
-    with dask.config.set(settings):  # read as the scheduler and nannies are built; nannies pass it on
+    with interrupts_held() as came, dask.config.set(settings):  # config read as the scheduler and nannies start
         cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True, host="127.0.0.1",
                                dashboard_address="127.0.0.1:0", plugins={ReadyWorker()},
                                silence_logs=logging.ERROR if quiet else logging.WARNING)
-    return Client(cluster), cluster
+        client = Client(cluster)
+    if came:  # Ctrl-C while it started: stop now that it can be closed cleanly
+        disconnect(client, cluster)
+        raise KeyboardInterrupt
+    return client, cluster
 
 
 def local_workers(workers: int | None) -> int:
-    """Worker processes of a local cluster: ``workers``, or one per core; :class:`UserError` below 1."""
-    n = workers or os.cpu_count() or 1
-    if n < 1:
-        raise UserError("--workers must be at least 1")
-    return n
+    """Worker processes of a local cluster: ``workers``, or one per core when None; :class:`UserError` below 1."""
+    if workers is None:
+        return os.cpu_count() or 1
+    if workers < 1:
+        raise UserError(f"--workers must be at least 1 (leave it out for one worker per core), not {workers}")
+    return workers
 
 
 def start_fork_server() -> bool:
@@ -681,24 +708,60 @@ def start_fork_server() -> bool:
 
 
 def disconnect(client, cluster) -> None:
-    """Close a client from :func:`connect`, and the local cluster if it started one."""
-    client.close()
-    if cluster is not None:
-        cluster.close()
+    """Close a client from :func:`connect`, and the local cluster if it started one (Ctrl-C meanwhile is ignored)."""
+    with interrupts_held():  # on the way out anyway
+        client.close()
+        if cluster is not None:
+            cluster.close()
+
+
+@contextmanager
+def interrupts_held():
+    """Hold back Ctrl-C and SIGTERM while the block runs; yield the list of those that came meanwhile.
+
+    Dask cannot cut a cluster's start or close short cleanly: interrupted
+    half-way, a local cluster ends the interpreter with a traceback from
+    Dask's exit hook.  A start takes a second or two; the caller acts on
+    the interrupt once it is over.  Main thread only, as signal handlers are.
+    """
+    import signal
+
+    came: list[int] = []
+    held = (signal.SIGINT, signal.SIGTERM)
+    previous = {s: signal.signal(s, lambda signum, frame: came.append(signum)) for s in held}
+    try:
+        yield came
+    finally:
+        for s, handler in previous.items():
+            signal.signal(s, handler)
 
 
 @contextmanager
 def connected(scheduler: str | None, workers: int | None):
-    """:func:`connect` as a context manager yielding the client; closes both on the way out."""
-    client, cluster = connect(scheduler, workers)
+    """:func:`open_cluster` of a local cluster or a scheduler, as a context manager yielding the client.
+
+    A ``tls://`` scheduler takes its certificates from Dask's TLS configuration.
+    """
+    client, cluster, _ = open_cluster(ClusterSpec(scheduler=scheduler, workers=workers))
     try:
         yield client
     finally:
         disconnect(client, cluster)
 
 
-def probe_scheduler(address: str, timeout: float = 5.0) -> None:
-    """Fail fast, in one line, on a malformed or refused ``tcp://host:port`` scheduler address."""
+def probe_scheduler(address: str, timeout: float = 5.0, security=None) -> dict:
+    """Fail fast, in one line, unless ``address`` is a Dask scheduler that answers; return its identity.
+
+    Checks, each with its own one-line :class:`SchedulerError`: the address
+    is ``tcp://HOST:PORT`` (or ``tls://``); something listens there; and it
+    answers Dask's handshake and identity request as a scheduler within
+    ``timeout`` seconds.  The last step is what catches a wrong port: an HTTP
+    server never completes Dask's handshake (the client would wait forever),
+    and one that answers at all sends bytes that Dask reads as a frame of
+    several exbibytes.  The identity (:meth:`distributed.Scheduler.identity`)
+    names the scheduler's services, the dashboard among them.  A ``tls://``
+    scheduler is asked with the client certificates of ``security``.
+    """
     from urllib.parse import urlsplit
 
     parts = urlsplit(address if "://" in address else f"tcp://{address}")
@@ -707,13 +770,58 @@ def probe_scheduler(address: str, timeout: float = 5.0) -> None:
     except ValueError:
         host = port = None
     if parts.scheme not in ("tcp", "tls") or not host or not port:
-        raise SchedulerError(f"{address!r} is not a scheduler address: write tcp://HOST:PORT, for example "
-                             "tcp://127.0.0.1:8786")
+        raise SchedulerError(f"{address!r} is not a scheduler address: write tls://HOST:PORT (or tcp://HOST:PORT "
+                             "on loopback), for example tls://head.halvorsen.example:8786")
     if parts.scheme == "tcp":
         try:
             socket.create_connection((host, port), timeout=timeout).close()
         except OSError as exc:
             raise SchedulerError(f"cannot reach the Dask scheduler at {address}: {exc.strerror or exc}") from None
+    return identify(address, timeout, security.get_connection_args("client") if security is not None else None)
+
+
+def identify(address: str, timeout: float, connection_args: dict | None = None) -> dict:
+    """The identity a Dask scheduler at ``address`` gives within ``timeout`` s, or a one-line :class:`SchedulerError`.
+
+    ``connection_args`` are Dask's arguments for the connection (its TLS
+    context, from :meth:`distributed.security.Security.get_connection_args`).
+    """
+    import asyncio
+    import logging
+
+    from distributed.comm import CommClosedError
+    from distributed.comm import connect as dask_connect
+
+    async def ask() -> object:
+        comm = await dask_connect(address, timeout=timeout, **(connection_args or {}))
+        try:
+            await comm.write({"op": "identity", "reply": True})
+            return await comm.read()
+        finally:
+            comm.abort()
+
+    comm_log = logging.getLogger("distributed.comm")
+    level = comm_log.level
+    comm_log.setLevel(logging.CRITICAL)  # what a stranger sends is our one line, not Dask's log
+    try:
+        reply = asyncio.run(asyncio.wait_for(ask(), timeout))
+    except asyncio.TimeoutError:
+        reply = f"no answer to Dask's handshake within {timeout:g} s"
+    except (CommClosedError, ConnectionError, EOFError):
+        reply = "it closed the connection during Dask's handshake"
+    except Exception as exc:  # noqa: BLE001 - whatever a non-Dask peer makes Dask raise
+        reply = _first_line(exc)
+    finally:
+        comm_log.setLevel(level)
+    kind = reply.get("type") if isinstance(reply, dict) else None
+    if kind == "Scheduler":
+        return reply
+    if kind is not None:
+        why = f"it is a Dask {kind.lower()}, not the scheduler"
+    else:
+        why = reply if isinstance(reply, str) else "it gave an answer Dask does not know"
+    raise SchedulerError(f"{address} does not answer as a Dask scheduler ({why}); check the address and port "
+                         "(a scheduler listens on 8786 unless told otherwise)")
 
 
 def _first_line(exc: BaseException) -> str:
@@ -804,18 +912,15 @@ def cluster_spec(*, cluster: str | None = None, jobs: str | int | None = None, s
     return ClusterSpec(slurm=request)
 
 
-def open_cluster(spec: ClusterSpec, quiet: bool = True, warn: Callable[[str], None] | None = None):
+def open_cluster(spec: ClusterSpec, quiet: bool = True, identity: dict | None = None):
     """A Dask client for ``spec``: ``(client, cluster_or_None, threads)``.
 
     ``threads`` is the number of worker threads to plan the window for: those
     the cluster has now, or, for SLURM, those it will have once its jobs run
     (tasks wait on the scheduler for workers still queued).  A ``tls://``
-    scheduler gets the certificate files of ``spec.tls`` or of Dask's TLS
-    configuration; a ``tcp://`` one outside loopback gets a warning line
-    (to ``warn``, default standard error) before it is reached.
+    scheduler gets the certificates of :func:`scheduler_security`;
+    ``identity`` is that of a scheduler probed already (:func:`probe_scheduler`).
     """
-    from foldfarm import security
-
     if spec.slurm is not None:
         from distributed import Client
 
@@ -823,27 +928,33 @@ def open_cluster(spec: ClusterSpec, quiet: bool = True, warn: Callable[[str], No
         from foldfarm.worker import DASK_SETTINGS
 
         _quiet_logs(quiet)
-        cluster, threads = slurm.start(spec.slurm, DASK_SETTINGS)
-        try:
+        with interrupts_held() as came:
+            cluster, threads = slurm.start(spec.slurm, DASK_SETTINGS)
             client = Client(cluster)
-        except BaseException:
-            cluster.close()
-            raise
+        if came:  # Ctrl-C while it started: stop now that it can be closed cleanly
+            disconnect(client, cluster)
+            raise KeyboardInterrupt
         return client, cluster, threads
-    tls = None
-    if spec.scheduler:
-        scheme = security.split_address(spec.scheduler)[0]
-        if scheme == "tls":
-            given = spec.tls or security.TlsFiles()
-            files = security.tls_files(given.ca_file, given.cert, given.key)
-            security.check_tls_files(files, spec.scheduler)
-            tls = security.client_security(files)
-        else:
-            line = security.plain_warning(spec.scheduler)
-            if line:
-                (warn or _to_stderr)(line)
-    client, cluster = connect(spec.scheduler, spec.workers, quiet, security=tls)
+    client, cluster = connect(spec.scheduler, spec.workers, quiet, identity=identity,
+                              security=scheduler_security(spec))
     return client, cluster, max(1, sum(client.nthreads().values()))
+
+
+def scheduler_security(spec: ClusterSpec):
+    """The Dask ``Security`` for the ``tls://`` scheduler of ``spec`` (None for any other).
+
+    Its files are those of ``spec.tls``, else those of Dask's TLS
+    configuration; :class:`foldfarm.security.SecurityError` in one line if
+    they are missing.
+    """
+    from foldfarm import security
+
+    if not spec.scheduler or security.split_address(spec.scheduler)[0] != "tls":
+        return None
+    given = spec.tls or security.TlsFiles()
+    files = security.tls_files(given.ca_file, given.cert, given.key)
+    security.check_tls_files(files, spec.scheduler)
+    return security.client_security(files)
 
 
 def _quiet_logs(quiet: bool) -> None:

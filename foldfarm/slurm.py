@@ -34,7 +34,7 @@ from __future__ import annotations
 import shutil
 import subprocess
 import sys
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 from foldfarm.errors import UserError
 from foldfarm.security import refuse_plain

@@ -17,7 +17,6 @@ import shutil
 import socket
 import subprocess
 import sys
-import time
 import uuid
 
 import pytest

@@ -174,7 +174,7 @@ def test_verify_passes_then_fails_after_tampering(filled):
     url, run_id = filled
     out = foldfarm("verify", str(run_id), "--store", url, "--audit", "0")
     assert out.returncode == 0, out.stderr
-    assert PUBLISHED.source in out.stdout and out.stdout.strip().endswith(f"run {run_id}: verified")
+    assert PUBLISHED.source in out.stdout and out.stdout.strip().splitlines()[-1].startswith(f"run {run_id}: verified: total, completeness, divisibility")
     with Store(url) as store:
         certificate = store.get_run(run_id).certificate
         victim = store.tasks(run_id, ["done"], limit=1)[0]

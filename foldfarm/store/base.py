@@ -59,7 +59,7 @@ class StoreBase:
         self.url = resolve_store_url(url)
         #: The URL with its password hidden: the only form that goes into messages.
         self.display_url = redact(self.url)
-        self.engine = make_engine(self.url)
+        self.engine = make_engine(self.url, create)
         self._writer = self.engine.execution_options(foldfarm_write=True)
         try:
             self._open_schema(create)

@@ -99,8 +99,12 @@ def scrub(message: str, url: str) -> str:
     return message
 
 
-def make_engine(url: str) -> Engine:
+def make_engine(url: str, create: bool = True) -> Engine:
     """Engine for a canonical URL (from :func:`resolve_store_url`).
+
+    With ``create`` false a SQLite file must exist already (opening it would
+    create an empty one: a mistyped path would leave a stray file behind and
+    read as a store without runs).
 
     SQLite: WAL journal (readers never block the writer), ``synchronous=NORMAL``
     (a power cut may drop the last transactions but never half of one),
@@ -113,6 +117,9 @@ def make_engine(url: str) -> Engine:
         folder = os.path.dirname(parsed.database or "")
         if folder and not os.path.isdir(folder):
             raise StoreError(f"cannot open the SQLite store {redact(url)}: folder {folder} does not exist")
+        if not create and not os.path.exists(parsed.database or ""):
+            raise StoreError(f"there is no store at {redact(url)}: the file does not exist "
+                             "(foldfarm run creates a store; check the path)")
         engine = create_engine(parsed, connect_args={"timeout": SQLITE_BUSY_SECONDS})
         event.listen(engine, "connect", _sqlite_on_connect)
         event.listen(engine, "begin", _sqlite_on_begin)
