@@ -772,11 +772,10 @@ def probe_scheduler(address: str, timeout: float = 5.0, security=None) -> dict:
     if parts.scheme not in ("tcp", "tls") or not host or not port:
         raise SchedulerError(f"{address!r} is not a scheduler address: write tls://HOST:PORT (or tcp://HOST:PORT "
                              "on loopback), for example tls://head.halvorsen.example:8786")
-    if parts.scheme == "tcp":
-        try:
-            socket.create_connection((host, port), timeout=timeout).close()
-        except OSError as exc:
-            raise SchedulerError(f"cannot reach the Dask scheduler at {address}: {exc.strerror or exc}") from None
+    try:  # TLS runs over TCP: a port nobody listens on is told at once either way
+        socket.create_connection((host, port), timeout=timeout).close()
+    except OSError as exc:
+        raise SchedulerError(f"cannot reach the Dask scheduler at {address}: {exc.strerror or exc}") from None
     return identify(address, timeout, security.get_connection_args("client") if security is not None else None)
 
 
@@ -807,7 +806,11 @@ def identify(address: str, timeout: float, connection_args: dict | None = None) 
         reply = asyncio.run(asyncio.wait_for(ask(), timeout))
     except asyncio.TimeoutError:
         reply = f"no answer to Dask's handshake within {timeout:g} s"
-    except (CommClosedError, ConnectionError, EOFError):
+    except (CommClosedError, ConnectionError, EOFError) as exc:
+        if address.startswith("tls://") and ("TLS" in str(exc) or "SSL" in str(exc)):
+            raise SchedulerError(f"{address} and this client do not trust each other's certificates "
+                                 f"({_first_line(exc).split(': ')[-1]}); check --tls-ca-file, --tls-cert and "
+                                 "--tls-key (deploy/README.md)") from None
         reply = "it closed the connection during Dask's handshake"
     except Exception as exc:  # noqa: BLE001 - whatever a non-Dask peer makes Dask raise
         reply = _first_line(exc)
