@@ -401,13 +401,17 @@ def _cluster_ready(spec) -> dict | None:
     loaded, so a command that fails keeps a caller who reads its output
     through a pipe waiting that long (it does for a bad store URL or an
     unknown run id).  A ``tcp://`` scheduler outside loopback gets its
-    warning line before it is reached.  SLURM is checked as its cluster
-    starts (:func:`foldfarm.slurm.start`).
+    warning line before it is reached.  SLURM and the worker jobs asked of
+    it are checked too (:func:`foldfarm.slurm.check`).
     """
     from foldfarm.run import local_workers, probe_scheduler, scheduler_security, start_fork_server
     from foldfarm.security import plain_warning
 
     if spec.slurm is not None:
+        from foldfarm import slurm
+        from foldfarm.worker import DASK_SETTINGS
+
+        slurm.check(spec.slurm, DASK_SETTINGS)
         return None
     if spec.scheduler is not None:
         if spec.workers is not None:

@@ -189,6 +189,19 @@ def tls_configured() -> bool:
     return bool(dask.config.get("distributed.comm.tls.ca-file", None))
 
 
+def check(request: Request, dask_settings: dict) -> tuple[dict, dict]:
+    """Everything that can be checked before a scheduler starts: ``(SLURMCluster options, jobqueue.slurm config)``.
+
+    One line (:class:`SlurmError`, :class:`foldfarm.security.SecurityError`)
+    for dask-jobqueue missing, a job without cores or memory, plain TCP beyond
+    loopback, no SLURM here, or an unknown partition.
+    """
+    config = slurm_config()
+    options = cluster_options(request, config, dask_settings, tls_configured())
+    check_slurm(options.get("queue", config.get("queue")))
+    return options, config
+
+
 def start(request: Request, dask_settings: dict):
     """Start the scheduler here and the adaptive worker jobs; returns ``(cluster, threads)``.
 
@@ -197,9 +210,7 @@ def start(request: Request, dask_settings: dict):
     """
     import dask
 
-    config = slurm_config()
-    options = cluster_options(request, config, dask_settings, tls_configured())
-    check_slurm(options.get("queue", config.get("queue")))
+    options, config = check(request, dask_settings)
     from dask_jobqueue import SLURMCluster
     from distributed.security import Security
 

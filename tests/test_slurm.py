@@ -197,6 +197,7 @@ def test_an_unknown_partition_is_one_line(slurm, slurm_env, tmp_path):
     out = foldfarm("run", "2x3", "--cluster", "slurm", "--jobs", "1", "--job-memory", "1GB", "--partition",
                    "no-such-partition", "--store", f"sqlite:///{tmp_path / 'x.sqlite'}", env=slurm_env, cwd=tmp_path)
     one_line(out, "no partition 'no-such-partition'")
+    assert not (tmp_path / "x.sqlite").exists(), "checked before the store opens"
 
 
 def test_no_slurm_on_the_machine_is_one_line(tmp_path):
@@ -205,6 +206,7 @@ def test_no_slurm_on_the_machine_is_one_line(tmp_path):
     out = foldfarm("run", "2x3", "--cluster", "slurm", "--jobs", "1", "--job-memory", "1GB",
                    "--store", f"sqlite:///{tmp_path / 'x.sqlite'}", env=env, cwd=tmp_path)
     one_line(out, "no sbatch")
+    assert not (tmp_path / "x.sqlite").exists(), "checked before the store opens"
 
 
 @pytest.mark.parametrize("args, words", [
@@ -230,6 +232,7 @@ def test_plain_tcp_beyond_loopback_is_refused_before_anything_listens(tmp_path):
     out = foldfarm("run", "2x3", "--cluster", "slurm", "--jobs", "1", "--store",
                    f"sqlite:///{tmp_path / 'x.sqlite'}", env=env)
     one_line(out, "will not start a scheduler without TLS on 0.0.0.0", "--insecure-plain-tcp")
+    assert not (tmp_path / "x.sqlite").exists(), "checked before the store opens"
 
 
 def test_the_deploy_script_is_the_generic_coordinator_script():
