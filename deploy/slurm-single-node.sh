@@ -43,15 +43,18 @@ fi
 node_idle() {
     sinfo --noheader --partition "$PARTITION" --format %t 2>/dev/null | grep -Eq '^(idle|mix|alloc)'
 }
-if ! command -v slurmctld >/dev/null || ! command -v munged >/dev/null; then
+missing=0
+for tool in slurmctld slurmd sbatch sinfo munged; do command -v "$tool" >/dev/null || missing=1; done
+if [[ $missing == 1 ]]; then
     say "installing slurm-wlm and munge"
     export DEBIAN_FRONTEND=noninteractive
     apt-get install -y -qq slurm-wlm munge >/dev/null 2>&1 || { apt-get update -qq && apt-get install -y -qq slurm-wlm munge >/dev/null; }
 fi
 
 # munge: the daemons authenticate each other with it.  munged wants its socket folder and its key.
-mkdir -p /run/munge /var/log/munge /var/lib/munge
-chown munge:munge /run/munge /var/log/munge /var/lib/munge
+mkdir -p /run/munge /var/log/munge /var/lib/munge /etc/munge
+chown munge:munge /run/munge /var/log/munge /var/lib/munge /etc/munge
+chmod 0700 /etc/munge
 chmod 0755 /run/munge
 if [[ ! -s /etc/munge/munge.key ]]; then
     dd if=/dev/urandom of=/etc/munge/munge.key bs=1 count=128 status=none

@@ -37,6 +37,8 @@ def slurm_takes_jobs() -> str | None:
     """None if a SLURM partition here has a node that takes jobs, else why not."""
     if shutil.which("sinfo") is None or shutil.which("sbatch") is None:
         return "SLURM is not installed"
+    if not os.path.exists(os.environ.get("SLURM_CONF", "/etc/slurm/slurm.conf")):
+        return "SLURM has no slurm.conf here"  # (without one, its commands would ask DNS where the controller is)
     try:
         import dask_jobqueue  # noqa: F401
     except ImportError:
