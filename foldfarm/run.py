@@ -33,6 +33,9 @@ again elsewhere, or, once Dask gives up on it, the coordinator resubmits it
 nothing recorded: on ``resume`` the tasks it had out (``running``) become
 pending again.  Ctrl-C stops submitting, cancels what is in flight, records
 what has arrived, returns the rest to pending and says how to resume.
+A store that stops answering (a database restart) is waited for, up to the
+run's ``store_wait`` seconds, while the results that arrive are held
+(:mod:`foldfarm.outage`); past that the run stops as cleanly as on Ctrl-C.
 
 Decisions (:class:`Dispatch`, :func:`classify_failure`, :func:`stale_lease`,
 :func:`needs_plan`, :func:`target_tasks`) are plain functions and a small
