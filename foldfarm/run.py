@@ -700,13 +700,24 @@ def start_fork_server() -> bool:
     returns whether local workers can be forked from it.
     """
     import multiprocessing
-    from multiprocessing import forkserver
+    import signal
+    from multiprocessing import forkserver, resource_tracker
 
     if "forkserver" not in multiprocessing.get_all_start_methods():
         return False
     # Takes effect only for a server not yet running (Dask names its own list later; by then ours runs).
     multiprocessing.get_context("forkserver").set_forkserver_preload(["foldfarm.preload"])
-    forkserver.ensure_running()
+    # The server shares the terminal's foreground process group, so a Ctrl-C reaches it too, and
+    # until its preload ignores SIGINT (a second, longer on a busy machine) it would die of it with
+    # a traceback on the terminal.  Started with SIGINT blocked, it (and every worker forked from
+    # it) inherits the block; here the block lasts only the spawn, and a Ctrl-C meanwhile waits.
+    # (The resource tracker starts first: its own start unblocks SIGINT on the way out.)
+    resource_tracker.ensure_running()
+    blocked = signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGINT})
+    try:
+        forkserver.ensure_running()
+    finally:
+        signal.pthread_sigmask(signal.SIG_SETMASK, blocked)
     return True
 
 
