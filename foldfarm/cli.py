@@ -10,6 +10,7 @@ import functools
 import gc
 import json
 import os
+import shlex
 import sys
 import time
 from contextlib import nullcontext
@@ -225,8 +226,9 @@ def _drive(store, run_id: int, spec, identity: dict | None, as_json: bool, quiet
             if not run_id:
                 typer.echo("foldfarm: interrupted before the run was planned; nothing was stored", err=True)
             else:
-                typer.echo(f"foldfarm: stopped run {run_id}; resume with: foldfarm resume {run_id} "
-                           f"--store {store.display_url}", err=True)
+                again = shlex.join(["foldfarm", "resume", str(run_id), "--store", store.display_url,
+                                    *runner.spec_arguments(spec)])
+                typer.echo(f"foldfarm: stopped run {run_id}; resume with: {again}", err=True)
             raise typer.Exit(130) from None
         finally:
             if client is not None:

@@ -929,6 +929,33 @@ def cluster_spec(*, cluster: str | None = None, jobs: str | int | None = None, s
     return ClusterSpec(slurm=request)
 
 
+def spec_arguments(spec: ClusterSpec) -> list[str]:
+    """The command-line options that ask for the cluster of ``spec`` again (for the line that says how to resume).
+
+    >>> spec_arguments(cluster_spec(cluster="slurm", jobs="2:8", partition="long"))
+    ['--cluster', 'slurm', '--jobs', '2:8', '--partition', 'long']
+    >>> spec_arguments(cluster_spec(scheduler="tcp://127.0.0.1:8786")), spec_arguments(cluster_spec())
+    (['--scheduler', 'tcp://127.0.0.1:8786'], [])
+    """
+    from foldfarm.security import INSECURE_FLAG
+
+    def given(pairs) -> list[str]:
+        return [text for option, value in pairs if value is not None for text in (option, str(value))]
+
+    if spec.slurm is not None:
+        r = spec.slurm
+        low, high = r.jobs
+        return (["--cluster", "slurm", "--jobs", str(low) if low == high else f"{low}:{high}"]
+                + given([("--job-cores", r.cores), ("--job-memory", r.memory), ("--walltime", r.walltime),
+                         ("--partition", r.partition), ("--account", r.account)])
+                + given(("--job-directive", d) for d in r.directives) + ([INSECURE_FLAG] if r.insecure else []))
+    if spec.scheduler is not None:
+        tls = spec.tls
+        return ["--scheduler", spec.scheduler] + (given([("--tls-ca-file", tls.ca_file), ("--tls-cert", tls.cert),
+                                                         ("--tls-key", tls.key)]) if tls is not None else [])
+    return given([("--workers", spec.workers)])
+
+
 def open_cluster(spec: ClusterSpec, quiet: bool = True, identity: dict | None = None):
     """A Dask client for ``spec``: ``(client, cluster_or_None, threads)``.
 
