@@ -10,6 +10,7 @@ import functools
 import gc
 import json
 import os
+import shlex
 import sys
 import time
 from contextlib import nullcontext
@@ -107,21 +108,48 @@ QuietOpt = typer.Option(False, "--quiet", help="No progress display.")
 TakeOverOpt = typer.Option(False, "--take-over", help="Drive the run even if another coordinator holds its lease.")
 TaskSecondsOpt = typer.Option(None, "--task-seconds", help="Budget of one task in seconds (default 120).")
 TaskNodesOpt = typer.Option(None, "--task-nodes", help="Budget of one task in search nodes (default: none).")
+ClusterOpt = typer.Option(None, "--cluster", help="local (worker processes on this machine; the default) or slurm "
+                          "(worker jobs through dask-jobqueue, configured by jobqueue.slurm.*; foldfarm[slurm]).")
+JobsOpt = typer.Option(None, "--jobs", help="SLURM worker jobs to keep: N, or MIN:MAX by load; ended jobs are "
+                       "replaced.")
+JobCoresOpt = typer.Option(None, "--job-cores", help="Cores of a SLURM worker job (default: jobqueue.slurm.cores).")
+JobMemoryOpt = typer.Option(None, "--job-memory", help="Memory of a SLURM worker job, e.g. 64GB (default: "
+                            "jobqueue.slurm.memory).")
+WalltimeOpt = typer.Option(None, "--walltime", help="Walltime of a SLURM worker job, e.g. 12:00:00 (default: "
+                           "jobqueue.slurm.walltime).")
+PartitionOpt = typer.Option(None, "--partition", help="SLURM partition (default: jobqueue.slurm.queue).")
+AccountOpt = typer.Option(None, "--account", help="SLURM account (default: jobqueue.slurm.account).")
+JobDirectiveOpt = typer.Option(None, "--job-directive", help="Extra #SBATCH option of the worker jobs, e.g. "
+                               "--qos=long (repeatable; added to jobqueue.slurm.job-extra-directives).")
+InsecureOpt = typer.Option(False, "--insecure-plain-tcp", help="Let --cluster slurm start a scheduler without "
+                           "TLS beyond loopback: anyone who reaches it can run code as you on every worker.")
+TlsCaOpt = typer.Option(None, "--tls-ca-file", help="CA certificate of a tls:// scheduler (default: "
+                        "distributed.comm.tls.ca-file of your Dask configuration).")
+TlsCertOpt = typer.Option(None, "--tls-cert", help="This client's certificate for a tls:// scheduler (default: "
+                          "distributed.comm.tls.client.cert).")
+TlsKeyOpt = typer.Option(None, "--tls-key", help="This client's private key for a tls:// scheduler (default: "
+                         "distributed.comm.tls.client.key).")
 
 
 def _budget(task_seconds: str | None, task_nodes: str | None) -> dict:
     """Run settings from the budget options; one line and exit 2 for a bad value."""
     values: dict = {}
     if task_seconds is not None:
-        try:
-            values["task_seconds"] = float(task_seconds)
-        except ValueError:
-            values["task_seconds"] = -1.0
-        if not values["task_seconds"] >= 0:
-            fail(f"--task-seconds must be a number of seconds >= 0, not {task_seconds!r}")
+        values["task_seconds"] = _seconds(task_seconds, "--task-seconds")
     if task_nodes is not None:
         values["task_nodes"] = _whole(task_nodes, "--task-nodes")
     return values
+
+
+def _seconds(text: str, option: str) -> float:
+    """``text`` as a finite number of seconds >= 0; one line and exit 2 otherwise."""
+    try:
+        value = float(text)
+    except ValueError:
+        value = -1.0
+    if not 0 <= value < float("inf"):
+        fail(f"{option} must be a number of seconds >= 0, not {text!r}")
+    return value
 
 
 def _open_store(url: str | None, create: bool = False):
@@ -158,8 +186,12 @@ def _dashboard_hint(cluster) -> str:
     return " (its graphs need bokeh: pip install 'foldfarm[dashboard]')"
 
 
-def _drive(store, run_id: int, scheduler, workers, identity: dict | None, as_json: bool, quiet: bool,
-           take_over: bool, new_shape: str | None = None, settings=None) -> None:
+def _drive(store, run_id: int, spec, identity: dict | None, as_json: bool, quiet: bool, take_over: bool,
+           new_shape: str | None = None, settings=None, run_file: str | None = None) -> None:
+    """Start or join the cluster of ``spec``, plan ``new_shape`` if given, drive the run; print the outcome.
+
+    With ``run_file``, the id of a new run is kept there as soon as it is planned.
+    """
     import signal
 
     from foldfarm import check
@@ -176,9 +208,13 @@ def _drive(store, run_id: int, scheduler, workers, identity: dict | None, as_jso
     try:
         client = cluster = None
         try:
-            client, cluster = runner.connect(scheduler, workers, identity=identity)
+            client, cluster, threads = runner.open_cluster(spec, identity=identity)
             if new_shape is not None:  # planned on a worker, which has the kernel loaded
-                run_id = runner.create(store, new_shape, settings, max(1, sum(client.nthreads().values())), client)
+                run_id = runner.create(store, new_shape, settings, threads, client)
+                if run_file:
+                    from foldfarm.batch import write_run_file
+
+                    write_run_file(run_file, run_id)
             if not (quiet or as_json):
                 if "dashboard" in client.scheduler_info().get("services", {}):  # a scheduler may run without one
                     typer.echo(f"dashboard: {client.dashboard_link}{_dashboard_hint(cluster)}", err=True)
@@ -186,13 +222,15 @@ def _drive(store, run_id: int, scheduler, workers, identity: dict | None, as_jso
                     typer.echo(f"run {run_id}: {new_shape} planned in {store.display_url}", err=True)
             show, live = _show_progress(quiet or as_json)
             with live if live is not None else nullcontext():
-                summary = runner.drive(store, client, run_id, holder=holder, take_over=take_over, on_progress=show)
+                summary = runner.drive(store, client, run_id, holder=holder, take_over=take_over, on_progress=show,
+                                       threads=threads)
         except (runner.Stopped, KeyboardInterrupt):  # Ctrl-C in the loop, or before it began
             if not run_id:
                 typer.echo("foldfarm: interrupted before the run was planned; nothing was stored", err=True)
             else:
-                typer.echo(f"foldfarm: stopped run {run_id}; resume with: foldfarm resume {run_id} "
-                           f"--store {store.display_url}", err=True)
+                again = shlex.join(["foldfarm", "resume", str(run_id), "--store", store.display_url,
+                                    *runner.spec_arguments(spec)])
+                typer.echo(f"foldfarm: stopped run {run_id}; resume with: {again}", err=True)
             raise typer.Exit(130) from None
         finally:
             if client is not None:
@@ -241,6 +279,24 @@ def run_cmd(
     task_nodes: str = TaskNodesOpt,
     tasks: str = typer.Option(None, "--tasks", help="Tasks to plan (default: 64 per worker thread, at least 256)."),
     given_order: bool = typer.Option(False, "--given-order", help="Search the sides in the order given."),
+    store_wait: str = typer.Option(None, "--store-wait", help="Seconds to wait for a store that stops answering "
+                                   "(a database restart) before stopping the run cleanly (default 300)."),
+    cluster: str = ClusterOpt,
+    jobs: str = JobsOpt,
+    job_cores: str = JobCoresOpt,
+    job_memory: str = JobMemoryOpt,
+    walltime: str = WalltimeOpt,
+    partition: str = PartitionOpt,
+    account: str = AccountOpt,
+    job_directive: list[str] = JobDirectiveOpt,
+    insecure_plain_tcp: bool = InsecureOpt,
+    tls_ca_file: str = TlsCaOpt,
+    tls_cert: str = TlsCertOpt,
+    tls_key: str = TlsKeyOpt,
+    run_file: str = typer.Option(None, "--run-file", help="Keep the run's id in this file; if it holds one "
+                                 "already, resume that run instead (what a requeued batch job does)."),
+    sbatch: str = typer.Option(None, "--sbatch", help="Write a batch script that runs this command as a SLURM job "
+                               "that requeues itself before its walltime, and exit (then: sbatch FILE)."),
     as_json: bool = JsonOpt,
     quiet: bool = QuietOpt,
 ) -> None:
@@ -251,32 +307,91 @@ def run_cmd(
 
     workers = _whole(workers, "--workers", 1)
     values: dict = {}
+    options: dict = {}
+    name = None
     if is_job_file(target):
         job = load_job(target)
         shape_text = job.shape
         values.update(job.settings)
         values.pop("name", None)
+        options = job.options
+        name = job.name
         store = store or job.store
         scheduler = scheduler or job.scheduler
         workers = job.workers if workers is None else workers
     else:
         shape_text = parse_shape(target).text
+    spec = _cluster_spec(options, scheduler=scheduler, workers=workers, cluster=cluster, jobs=jobs,
+                         job_cores=job_cores, job_memory=job_memory, walltime=walltime, partition=partition,
+                         account=account, job_directive=job_directive, insecure_plain_tcp=insecure_plain_tcp,
+                         tls_ca_file=tls_ca_file, tls_cert=tls_cert, tls_key=tls_key)
     values.update(_budget(task_seconds, task_nodes))
     if tasks is not None:
         values["tasks"] = _whole(tasks, "--tasks", 1)
     if given_order:
         values["order"] = "given"
+    if store_wait is not None:
+        values["store_wait"] = _seconds(store_wait, "--store-wait")
     settings = Settings.from_dict(values)
-    identity = _cluster_ready(scheduler, workers)
+    if sbatch is not None:
+        _write_batch_script(sbatch, name or f"foldfarm-{shape_text}", spec)
+        return
+    from foldfarm.batch import read_run_file
+
+    known = read_run_file(run_file) if run_file else None
+    identity = _cluster_ready(spec)
     opened = _open_store(store, create=True)
     try:
-        _drive(opened, 0, scheduler, workers, identity, as_json, quiet, False, new_shape=shape_text, settings=settings)
+        if known is not None:  # a requeued batch job: the run it started before
+            opened.get_run(known)
+            _drive(opened, known, spec, identity, as_json, quiet, False)
+        else:
+            _drive(opened, 0, spec, identity, as_json, quiet, False, new_shape=shape_text, settings=settings,
+                   run_file=run_file)
     finally:
         opened.close()
 
 
-def _cluster_ready(scheduler: str | None, workers: int | None) -> dict | None:
-    """Check the cluster options before the store opens; return a scheduler's identity (None: local cluster).
+def _cluster_spec(job_options: dict, **given):
+    """The :class:`foldfarm.run.ClusterSpec` of the command-line options over a job file's (one line if they clash)."""
+    from foldfarm.run import cluster_spec
+
+    def pick(key: str, option: str | None = None):
+        value = given.get(key)
+        return value if value not in (None, [], False) else job_options.get(option or key)
+
+    cores = pick("job_cores")
+    return cluster_spec(
+        cluster=pick("cluster"), jobs=pick("jobs"), scheduler=given.get("scheduler"), workers=given.get("workers"),
+        job_cores=_whole(cores, "--job-cores") if isinstance(cores, str) else cores,
+        job_memory=pick("job_memory"), walltime=pick("walltime"), partition=pick("partition"),
+        account=pick("account"), directives=tuple(pick("job_directive", "job_directives") or ()),
+        insecure=bool(given.get("insecure_plain_tcp")), tls_ca_file=pick("tls_ca_file"), tls_cert=pick("tls_cert"),
+        tls_key=pick("tls_key"))
+
+
+def _write_batch_script(path: str, name: str, spec) -> None:
+    """``--sbatch FILE``: the coordinator's batch script for this very command line (without ``--sbatch``)."""
+    from foldfarm.batch import coordinator_script, without_option
+
+    if spec.slurm is None and spec.scheduler is None:
+        fail("--sbatch writes a coordinator job for worker jobs or a scheduler elsewhere: add --cluster slurm "
+             "--jobs N (or --scheduler ADDRESS)")
+    if "run" not in sys.argv:
+        fail("--sbatch writes the command line it was given: use it from a shell")
+    arguments = without_option(sys.argv[sys.argv.index("run") + 1:], "--sbatch")
+    request = spec.slurm
+    text = coordinator_script(sys.executable, arguments, name=name.replace(" ", "-"), cwd=os.getcwd(),
+                              partition=request.partition if request else None,
+                              account=request.account if request else None)
+    _write_file(path, lambda handle: handle.write(text))
+    os.chmod(path, 0o700)
+    typer.echo(f"wrote {path}; submit it with: sbatch {path}   (add --time=... for the coordinator's walltime)",
+               err=True)
+
+
+def _cluster_ready(spec) -> dict | None:
+    """Check the cluster of ``spec`` before the store opens; return a scheduler's identity (None: no scheduler yet).
 
     A scheduler is probed now (:func:`foldfarm.run.probe_scheduler`), so a
     wrong address ends in one line with nothing written to the store.  For
@@ -289,16 +404,28 @@ def _cluster_ready(scheduler: str | None, workers: int | None) -> dict | None:
     checked: the server holds this process's stdout and stderr until it has
     loaded, so a command that fails keeps a caller who reads its output
     through a pipe waiting that long (it does for a bad store URL or an
-    unknown run id).
+    unknown run id).  A ``tcp://`` scheduler outside loopback gets its
+    warning line before it is reached.  SLURM and the worker jobs asked of
+    it are checked too (:func:`foldfarm.slurm.check`).
     """
-    from foldfarm.run import local_workers, probe_scheduler, start_fork_server
+    from foldfarm.run import local_workers, probe_scheduler, scheduler_security, start_fork_server
+    from foldfarm.security import plain_warning
 
-    if scheduler is not None:
-        if workers is not None:
+    if spec.slurm is not None:
+        from foldfarm import slurm
+        from foldfarm.worker import DASK_SETTINGS
+
+        slurm.check(spec.slurm, DASK_SETTINGS)
+        return None
+    if spec.scheduler is not None:
+        if spec.workers is not None:
             fail("--workers sets the size of a local cluster; a scheduler brings its own workers: give one or "
                  "the other")
-        return probe_scheduler(scheduler)
-    local_workers(workers)  # the last argument to check
+        warning = plain_warning(spec.scheduler)
+        if warning:
+            typer.echo(warning, err=True)
+        return probe_scheduler(spec.scheduler, security=scheduler_security(spec))
+    local_workers(spec.workers)  # the last argument to check
     start_fork_server()
     return None
 
@@ -316,6 +443,18 @@ def resume_cmd(
     store: str = StoreOpt,
     workers: str = WorkersOpt,
     scheduler: str = SchedulerOpt,
+    cluster: str = ClusterOpt,
+    jobs: str = JobsOpt,
+    job_cores: str = JobCoresOpt,
+    job_memory: str = JobMemoryOpt,
+    walltime: str = WalltimeOpt,
+    partition: str = PartitionOpt,
+    account: str = AccountOpt,
+    job_directive: list[str] = JobDirectiveOpt,
+    insecure_plain_tcp: bool = InsecureOpt,
+    tls_ca_file: str = TlsCaOpt,
+    tls_cert: str = TlsCertOpt,
+    tls_key: str = TlsKeyOpt,
     as_json: bool = JsonOpt,
     quiet: bool = QuietOpt,
     take_over: bool = TakeOverOpt,
@@ -325,11 +464,15 @@ def resume_cmd(
 
     run_id = _run_id(run)
     workers = _whole(workers, "--workers", 1)
-    identity = _cluster_ready(scheduler, workers)
+    spec = _cluster_spec({}, scheduler=scheduler, workers=workers, cluster=cluster, jobs=jobs, job_cores=job_cores,
+                         job_memory=job_memory, walltime=walltime, partition=partition, account=account,
+                         job_directive=job_directive, insecure_plain_tcp=insecure_plain_tcp,
+                         tls_ca_file=tls_ca_file, tls_cert=tls_cert, tls_key=tls_key)
+    identity = _cluster_ready(spec)
     opened = _open_store(store)
     try:
         tree_of(opened.get_run(run_id).settings)  # a tree this version cannot search: say so before the cluster starts
-        _drive(opened, run_id, scheduler, workers, identity, as_json, quiet, take_over)
+        _drive(opened, run_id, spec, identity, as_json, quiet, take_over)
     finally:
         opened.close()
 

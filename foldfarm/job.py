@@ -10,10 +10,14 @@ to cut and drive it; command-line options override it.  Example
     task_seconds = 60
     workers = 2
 
-Keys: ``name``, ``shape`` (required), ``store``, ``scheduler``, ``workers``,
-and the run settings of :class:`foldfarm.run.Settings` (``task_seconds``,
+Keys: ``name``, ``shape`` (required), ``store``, ``scheduler``, ``workers``;
+for SLURM (:mod:`foldfarm.slurm`) ``cluster`` (``"local"`` or ``"slurm"``),
+``jobs`` (``8`` or ``"4:16"``), ``job_cores``, ``job_memory``, ``walltime``,
+``partition``, ``account``, ``job_directives`` (a list of ``#SBATCH``
+options); for a ``tls://`` scheduler ``tls_ca_file``, ``tls_cert``,
+``tls_key``; and the run settings of :class:`foldfarm.run.Settings` (``task_seconds``,
 ``task_nodes``, ``tasks``, ``probes``, ``seed``, ``order``, ``window``,
-``max_attempts``, ``audit``).
+``max_attempts``, ``audit``, ``store_wait``).
 """
 
 from __future__ import annotations
@@ -28,9 +32,15 @@ from foldfarm.shape import parse_shape
 _TYPES = {
     "name": str, "shape": str, "store": str, "scheduler": str, "workers": int,
     "task_seconds": (int, float), "task_nodes": int, "tasks": int, "probes": int, "seed": int,
-    "order": str, "window": int, "max_attempts": int, "audit": (int, float),
+    "order": str, "window": int, "max_attempts": int, "audit": (int, float), "store_wait": (int, float),
+    "cluster": str, "jobs": (int, str), "job_cores": int, "job_memory": str, "walltime": str, "partition": str,
+    "account": str, "job_directives": list, "tls_ca_file": str, "tls_cert": str, "tls_key": str,
 }
-_CLUSTER = {"name", "shape", "store", "scheduler", "workers"}
+#: Keys that say where the run goes, not how it is cut.
+_PLACE = {"name", "shape", "store", "scheduler", "workers"}
+#: Keys of the SLURM worker jobs and of TLS, passed on as the command-line options of the same name.
+OPTIONS = ("cluster", "jobs", "job_cores", "job_memory", "walltime", "partition", "account", "job_directives",
+           "tls_ca_file", "tls_cert", "tls_key")
 
 
 class JobError(UserError):
@@ -48,6 +58,7 @@ class Job:
     scheduler: str | None = None
     workers: int | None = None
     settings: dict = field(default_factory=dict)
+    options: dict = field(default_factory=dict)
 
 
 def is_job_file(argument: str) -> bool:
@@ -71,12 +82,15 @@ def load_job(path: str) -> Job:
     for key, value in data.items():
         if isinstance(value, bool) or not isinstance(value, _TYPES[key]):
             raise JobError(f"job file {path}: {key} = {value!r} has the wrong type")
+    if not all(isinstance(d, str) for d in data.get("job_directives", [])):
+        raise JobError(f"job file {path}: job_directives must be a list of texts, like [\"--qos=long\"]")
     if "shape" not in data:
         raise JobError(f"job file {path} has no shape (for example: shape = \"3x8\")")
     try:
         parse_shape(data["shape"])
     except UserError as exc:
         raise JobError(f"job file {path}: {exc}") from None
-    settings = {k: v for k, v in data.items() if k not in _CLUSTER}
+    settings = {k: v for k, v in data.items() if k not in _PLACE and k not in OPTIONS}
+    options = {k: v for k, v in data.items() if k in OPTIONS}
     return Job(path=path, shape=data["shape"], name=data.get("name"), store=data.get("store"),
-               scheduler=data.get("scheduler"), workers=data.get("workers"), settings=settings)
+               scheduler=data.get("scheduler"), workers=data.get("workers"), settings=settings, options=options)

@@ -33,6 +33,9 @@ again elsewhere, or, once Dask gives up on it, the coordinator resubmits it
 nothing recorded: on ``resume`` the tasks it had out (``running``) become
 pending again.  Ctrl-C stops submitting, cancels what is in flight, records
 what has arrived, returns the rest to pending and says how to resume.
+A store that stops answering (a database restart) is waited for, up to the
+run's ``store_wait`` seconds, while the results that arrive are held
+(:mod:`foldfarm.outage`); past that the run stops as cleanly as on Ctrl-C.
 
 Decisions (:class:`Dispatch`, :func:`classify_failure`, :func:`stale_lease`,
 :func:`needs_plan`, :func:`target_tasks`) are plain functions and a small
@@ -71,7 +74,9 @@ class Settings:
     ``task_seconds``/``task_nodes`` bound one task's work (whichever comes
     first; ``task_nodes`` 0 means no node bound); ``tasks`` is the planner's
     target (0: choose from the cluster size); ``window`` is in-flight tasks
-    per worker thread.
+    per worker thread; ``store_wait`` is how long, in seconds, the
+    coordinator waits for a store that stopped answering before it stops
+    the run (:mod:`foldfarm.outage`).
     """
 
     task_seconds: float = 120.0
@@ -83,6 +88,7 @@ class Settings:
     window: int = 4
     max_attempts: int = 3
     audit: float = 0.01
+    store_wait: float = 300.0
 
     @classmethod
     def from_dict(cls, data: dict) -> Settings:
@@ -302,7 +308,11 @@ class Summary:
 
 
 class Stopped(Exception):
-    """The user interrupted the run; everything in flight went back to pending."""
+    """The run stopped cleanly before its end (Ctrl-C, SIGTERM, a store gone for too long).
+
+    Everything in flight went back to pending, or, if the store could not be
+    reached, is still ``running`` there and goes back to pending on resume.
+    """
 
     def __init__(self, run: int):
         super().__init__(f"run {run} stopped")
@@ -386,21 +396,32 @@ def planned(sides: tuple[int, ...], settings: Settings, tree: int, client=None) 
 
 
 def drive(store, client, run_id: int, *, holder: str | None = None, take_over: bool = False,
-          on_progress: Callable[[Any], None] | None = None) -> Summary:
+          on_progress: Callable[[Any], None] | None = None,
+          on_notice: Callable[[str], None] | None = None, threads: int | None = None) -> Summary:
     """Drive run ``run_id`` on ``client`` until nothing is open; record everything in ``store``.
 
-    Raises :class:`Stopped` after a clean stop on Ctrl-C.
+    Raises :class:`Stopped` after a clean stop on Ctrl-C, or when the store
+    did not answer for the run's ``store_wait`` seconds.  ``on_notice``
+    receives the lines that say the store stopped answering and answers
+    again (default: standard error).  ``threads`` is the number of worker
+    threads to keep busy when the cluster will have more than it has now
+    (SLURM jobs still queued); the window is never planned for fewer than
+    the cluster has.
     """
+    from foldfarm.outage import PatientStore, StoreGone
     from foldfarm.store import TaskResult
     from foldfarm.worker import ReadyWorker, work
 
     started = time.perf_counter()
     holder = holder or holder_name()
+    notice = on_notice or _to_stderr
     run = store.get_run(run_id)
     if run.state in ("done", "verified", "suspect"):
         return finish(store, run_id, started)
     settings = Settings.from_dict(run.settings)
     tree = tree_of(run.settings)  # a run made before the map's symmetries were used continues on tree 1
+    raw, dispatch = store, None
+    store = PatientStore(raw, settings.store_wait, notice, holding=lambda: len(dispatch.done) if dispatch else 0)
     sides = tuple(int(p) for p in run.side_order.split("x") if int(p) > 1)
     take_lease(store, run_id, holder, force=take_over)
     try:
@@ -410,7 +431,7 @@ def drive(store, client, run_id: int, *, holder: str | None = None, take_over: b
         store.reset_running(run_id, failed=True)
         if run.state != "running":
             store.set_run_state(run_id, "running")
-        threads = max(1, sum(client.nthreads().values()))
+        threads = max(1, threads or 0, sum(client.nthreads().values()))
         dispatch = Dispatch(capacity=settings.window * threads, last_flush=time.monotonic())
         futures: dict[Any, str] = {}  # future -> bundle key
         from distributed import as_completed
@@ -474,7 +495,7 @@ def drive(store, client, run_id: int, *, holder: str | None = None, take_over: b
                 store.mark_running([t for t, _, _ in again])
                 submit([again])
 
-        heart = Heartbeat(store, run_id, holder)
+        heart = Heartbeat(raw, run_id, holder)  # tries once a beat, never waits: the lease TTL leaves room
         try:
             refill()
             while dispatch.busy():
@@ -495,13 +516,17 @@ def drive(store, client, run_id: int, *, holder: str | None = None, take_over: b
                     shown = now
             flush()
         except KeyboardInterrupt:
-            _stop(store, client, run_id, futures, flush)
+            _stop(raw, client, run_id, futures, dispatch)
+            raise Stopped(run_id) from None
+        except StoreGone as exc:
+            notice(f"foldfarm: {exc}; stopping run {run_id}")
+            _stop(raw, client, run_id, futures, dispatch)
             raise Stopped(run_id) from None
         finally:
             heart.stop()
         return finish(store, run_id, started, client)
     finally:
-        release_lease(store, run_id, holder)
+        release_lease(raw, run_id, holder)
 
 
 def release_lease(store, run_id: int, holder: str) -> None:
@@ -539,7 +564,8 @@ class Heartbeat:
             except LeaseLost as exc:
                 self.lost = exc
                 return
-            except StoreError:  # a database hiccup: try again next beat, the TTL leaves room
+            except StoreError:  # a hiccup or an outage: try again next beat.  A lease that expired
+                # meanwhile is still ours unless another coordinator took it (the beat then says so).
                 continue
 
     def check(self) -> None:
@@ -551,21 +577,43 @@ class Heartbeat:
         self._thread.join(timeout=5)
 
 
-def _stop(store, client, run_id: int, futures: dict, flush: Callable[[], None]) -> None:
-    """Ctrl-C: cancel what is in flight, record what arrived, return the rest to pending."""
+def _stop(store, client, run_id: int, futures: dict, dispatch: Dispatch | None) -> None:
+    """A clean stop: cancel what is in flight, record what arrived, return the rest to pending.
+
+    Each store call is tried once: a store that does not answer is not waited
+    for (Ctrl-C must stop now; a store gone for too long was waited for
+    already).  What it could not record stays ``running`` in the store, and
+    resume returns it to pending.
+    """
     import signal
 
-    previous = signal.signal(signal.SIGINT, signal.SIG_IGN)  # a second Ctrl-C must not cut this short
+    from foldfarm.store import StoreUnavailable
+
+    # A second Ctrl-C, or a second SIGTERM (a batch system may send one to every process of the job
+    # and the job script pass on another), must not cut this short.
+    previous = {sig: signal.signal(sig, signal.SIG_IGN) for sig in (signal.SIGINT, signal.SIGTERM)}
     try:
         try:
             client.cancel(list(futures))
         except Exception:
             pass
-        flush()
-        store.reset_running(run_id)
-        store.set_run_state(run_id, "stopped")
+        try:
+            if dispatch is not None and dispatch.done:
+                store.record_done_many(dispatch.done)
+                dispatch.done = []
+            store.reset_running(run_id)
+            store.set_run_state(run_id, "stopped")
+        except StoreUnavailable:
+            pass
     finally:
-        signal.signal(signal.SIGINT, previous)
+        for sig, handler in previous.items():
+            signal.signal(sig, handler)
+
+
+def _to_stderr(line: str) -> None:
+    import sys
+
+    print(line, file=sys.stderr, flush=True)
 
 
 def finish(store, run_id: int, started: float, client=None) -> Summary:
@@ -598,11 +646,13 @@ class SchedulerError(UserError):
     """The Dask scheduler cannot be reached."""
 
 
-def connect(scheduler: str | None, workers: int | None, quiet: bool = True, identity: dict | None = None):
+def connect(scheduler: str | None, workers: int | None, quiet: bool = True, identity: dict | None = None,
+            security=None):
     """A Dask client: to ``scheduler`` if given, else to a new local cluster.
 
     A scheduler is probed first (:func:`probe_scheduler`) unless its
-    ``identity`` from an earlier probe is given.
+    ``identity`` from an earlier probe is given; ``security`` (a Dask
+    ``Security``) is what a ``tls://`` scheduler needs.
 
     The local cluster has ``workers`` single-threaded worker processes (default:
     one per core) bound to 127.0.0.1, with :data:`foldfarm.worker.DASK_SETTINGS`;
@@ -617,14 +667,12 @@ def connect(scheduler: str | None, workers: int | None, quiet: bool = True, iden
 
     from foldfarm.worker import DASK_SETTINGS, ReadyWorker
 
-    if quiet:
-        for name in ("distributed", "distributed.nanny", "distributed.scheduler", "distributed.worker"):
-            logging.getLogger(name).setLevel(logging.ERROR)
+    _quiet_logs(quiet)
     if scheduler:
         if identity is None:
-            probe_scheduler(scheduler)
+            probe_scheduler(scheduler, security=security)
         try:
-            return Client(scheduler, timeout="10s"), None
+            return Client(scheduler, timeout="10s", security=security), None
         except (OSError, TimeoutError, ValueError) as exc:
             raise SchedulerError(f"cannot reach the Dask scheduler at {scheduler}: {_first_line(exc)}") from None
     n = local_workers(workers)
@@ -660,13 +708,24 @@ def start_fork_server() -> bool:
     returns whether local workers can be forked from it.
     """
     import multiprocessing
-    from multiprocessing import forkserver
+    import signal
+    from multiprocessing import forkserver, resource_tracker
 
     if "forkserver" not in multiprocessing.get_all_start_methods():
         return False
     # Takes effect only for a server not yet running (Dask names its own list later; by then ours runs).
     multiprocessing.get_context("forkserver").set_forkserver_preload(["foldfarm.preload"])
-    forkserver.ensure_running()
+    # The server shares the terminal's foreground process group, so a Ctrl-C reaches it too, and
+    # until its preload ignores SIGINT (a second, longer on a busy machine) it would die of it with
+    # a traceback on the terminal.  Started with SIGINT blocked, it (and every worker forked from
+    # it) inherits the block; here the block lasts only the spawn, and a Ctrl-C meanwhile waits.
+    # (The resource tracker starts first: its own start unblocks SIGINT on the way out.)
+    resource_tracker.ensure_running()
+    blocked = signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGINT})
+    try:
+        forkserver.ensure_running()
+    finally:
+        signal.pthread_sigmask(signal.SIG_SETMASK, blocked)
     return True
 
 
@@ -701,15 +760,18 @@ def interrupts_held():
 
 @contextmanager
 def connected(scheduler: str | None, workers: int | None):
-    """:func:`connect` as a context manager yielding the client; closes both on the way out."""
-    client, cluster = connect(scheduler, workers)
+    """:func:`open_cluster` of a local cluster or a scheduler, as a context manager yielding the client.
+
+    A ``tls://`` scheduler takes its certificates from Dask's TLS configuration.
+    """
+    client, cluster, _ = open_cluster(ClusterSpec(scheduler=scheduler, workers=workers))
     try:
         yield client
     finally:
         disconnect(client, cluster)
 
 
-def probe_scheduler(address: str, timeout: float = 5.0) -> dict:
+def probe_scheduler(address: str, timeout: float = 5.0, security=None) -> dict:
     """Fail fast, in one line, unless ``address`` is a Dask scheduler that answers; return its identity.
 
     Checks, each with its own one-line :class:`SchedulerError`: the address
@@ -719,7 +781,8 @@ def probe_scheduler(address: str, timeout: float = 5.0) -> dict:
     server never completes Dask's handshake (the client would wait forever),
     and one that answers at all sends bytes that Dask reads as a frame of
     several exbibytes.  The identity (:meth:`distributed.Scheduler.identity`)
-    names the scheduler's services, the dashboard among them.
+    names the scheduler's services, the dashboard among them.  A ``tls://``
+    scheduler is asked with the client certificates of ``security``.
     """
     from urllib.parse import urlsplit
 
@@ -729,14 +792,13 @@ def probe_scheduler(address: str, timeout: float = 5.0) -> dict:
     except ValueError:
         host = port = None
     if parts.scheme not in ("tcp", "tls") or not host or not port:
-        raise SchedulerError(f"{address!r} is not a scheduler address: write tcp://HOST:PORT, for example "
-                             "tcp://127.0.0.1:8786")
-    if parts.scheme == "tcp":
-        try:
-            socket.create_connection((host, port), timeout=timeout).close()
-        except OSError as exc:
-            raise SchedulerError(f"cannot reach the Dask scheduler at {address}: {exc.strerror or exc}") from None
-    return identify(address, timeout)
+        raise SchedulerError(f"{address!r} is not a scheduler address: write tls://HOST:PORT (or tcp://HOST:PORT "
+                             "on loopback), for example tls://head.halvorsen.example:8786")
+    try:  # TLS runs over TCP: a port nobody listens on is told at once either way
+        socket.create_connection((host, port), timeout=timeout).close()
+    except OSError as exc:
+        raise SchedulerError(f"cannot reach the Dask scheduler at {address}: {exc.strerror or exc}") from None
+    return identify(address, timeout, security.get_connection_args("client") if security is not None else None)
 
 
 def identify(address: str, timeout: float, connection_args: dict | None = None) -> dict:
@@ -766,7 +828,11 @@ def identify(address: str, timeout: float, connection_args: dict | None = None) 
         reply = asyncio.run(asyncio.wait_for(ask(), timeout))
     except asyncio.TimeoutError:
         reply = f"no answer to Dask's handshake within {timeout:g} s"
-    except (CommClosedError, ConnectionError, EOFError):
+    except (CommClosedError, ConnectionError, EOFError) as exc:
+        if address.startswith("tls://") and ("TLS" in str(exc) or "SSL" in str(exc)):
+            raise SchedulerError(f"{address} and this client do not trust each other's certificates "
+                                 f"({_first_line(exc).split(': ')[-1]}); check --tls-ca-file, --tls-cert and "
+                                 "--tls-key (deploy/README.md)") from None
         reply = "it closed the connection during Dask's handshake"
     except Exception as exc:  # noqa: BLE001 - whatever a non-Dask peer makes Dask raise
         reply = _first_line(exc)
@@ -793,3 +859,160 @@ def eta_seconds(estimated_nodes: float | None, nodes_done: int, rate: float) -> 
     if not estimated_nodes or rate <= 0:
         return None
     return max(0.0, estimated_nodes - nodes_done) / rate if math.isfinite(rate) else None
+
+
+# --------------------------------------------------------------------------
+# Where the workers come from
+# --------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class ClusterSpec:
+    """Where a command's Dask cluster comes from, as the user asked.
+
+    A local cluster of ``workers`` processes (the default), a running
+    scheduler at ``scheduler`` (``tcp://`` or ``tls://``, with ``tls`` files
+    for the latter), or SLURM worker jobs (``slurm``, a
+    :class:`foldfarm.slurm.Request`).
+    """
+
+    scheduler: str | None = None
+    workers: int | None = None
+    slurm: Any = None
+    tls: Any = None
+
+
+def cluster_spec(*, cluster: str | None = None, jobs: str | int | None = None, scheduler: str | None = None,
+                 workers: int | None = None, job_cores: int | None = None, job_memory: str | None = None,
+                 walltime: str | None = None, partition: str | None = None, account: str | None = None,
+                 directives: tuple[str, ...] = (), insecure: bool = False, tls_ca_file: str | None = None,
+                 tls_cert: str | None = None, tls_key: str | None = None) -> ClusterSpec:
+    """Check a combination of cluster options and make the :class:`ClusterSpec`; :class:`UserError` in one line.
+
+    >>> cluster_spec(cluster="slurm", jobs="2:8").slurm.jobs
+    (2, 8)
+    >>> cluster_spec(jobs=4)
+    Traceback (most recent call last):
+    ...
+    foldfarm.errors.UserError: --jobs is for --cluster slurm (the local cluster's count is --workers)
+    """
+    from foldfarm.security import INSECURE_FLAG, TlsFiles, check_tls_files, split_address, tls_files
+
+    kind = cluster or "local"
+    if kind not in ("local", "slurm"):
+        raise UserError(f"--cluster must be local or slurm, not {cluster!r}")
+    slurm_only = {"--jobs": jobs, "--job-cores": job_cores, "--job-memory": job_memory, "--walltime": walltime,
+                  "--partition": partition, "--account": account, "--job-directive": directives or None,
+                  INSECURE_FLAG: insecure or None}
+    tls = TlsFiles(*(os.path.expanduser(p) if p else None for p in (tls_ca_file, tls_cert, tls_key)))
+    if kind == "local":
+        given = [name for name, value in slurm_only.items() if value is not None]
+        if given:
+            hint = " (the local cluster's count is --workers)" if given[0] == "--jobs" else ""
+            raise UserError(f"{given[0]} is for --cluster slurm{hint}")
+        scheme = split_address(scheduler)[0] if scheduler else None
+        if scheme not in (None, "tcp", "tls"):
+            raise UserError(f"{scheduler!r} is not a scheduler address: write tls://HOST:PORT (or tcp://HOST:PORT "
+                            "on loopback), for example tls://head.halvorsen.example:8786")
+        if tls.given() and scheme != "tls":
+            raise UserError("--tls-ca-file, --tls-cert and --tls-key are for a --scheduler tls://HOST:PORT")
+        if scheme == "tls":
+            tls = tls_files(tls.ca_file, tls.cert, tls.key)
+            check_tls_files(tls, scheduler)
+        return ClusterSpec(scheduler=scheduler, workers=workers, tls=tls)
+    from foldfarm.slurm import Request, SlurmError, parse_jobs
+
+    for option, value in (("--scheduler", scheduler), ("--workers", workers)):
+        if value is not None:
+            raise UserError(f"{option} does not go with --cluster slurm, which starts its own scheduler and "
+                            "asks SLURM for --jobs worker jobs")
+    if tls.given():
+        raise UserError("--cluster slurm makes its own certificates (or takes those of distributed.comm.tls in "
+                        "your Dask configuration); --tls-* options are for a --scheduler tls://HOST:PORT")
+    if jobs is None:
+        raise UserError("--cluster slurm needs --jobs N (worker jobs to keep) or --jobs MIN:MAX")
+    if job_cores is not None and (isinstance(job_cores, bool) or job_cores < 1):
+        raise SlurmError(f"--job-cores must be a whole number of at least 1, not {job_cores!r}")
+    request = Request(jobs=parse_jobs(jobs), cores=job_cores, memory=job_memory, walltime=walltime,
+                      partition=partition, account=account, directives=tuple(directives), insecure=insecure)
+    return ClusterSpec(slurm=request)
+
+
+def spec_arguments(spec: ClusterSpec) -> list[str]:
+    """The command-line options that ask for the cluster of ``spec`` again (for the line that says how to resume).
+
+    >>> spec_arguments(cluster_spec(cluster="slurm", jobs="2:8", partition="long"))
+    ['--cluster', 'slurm', '--jobs', '2:8', '--partition', 'long']
+    >>> spec_arguments(cluster_spec(scheduler="tcp://127.0.0.1:8786")), spec_arguments(cluster_spec())
+    (['--scheduler', 'tcp://127.0.0.1:8786'], [])
+    """
+    from foldfarm.security import INSECURE_FLAG
+
+    def given(pairs) -> list[str]:
+        return [text for option, value in pairs if value is not None for text in (option, str(value))]
+
+    if spec.slurm is not None:
+        r = spec.slurm
+        low, high = r.jobs
+        return (["--cluster", "slurm", "--jobs", str(low) if low == high else f"{low}:{high}"]
+                + given([("--job-cores", r.cores), ("--job-memory", r.memory), ("--walltime", r.walltime),
+                         ("--partition", r.partition), ("--account", r.account)])
+                + given(("--job-directive", d) for d in r.directives) + ([INSECURE_FLAG] if r.insecure else []))
+    if spec.scheduler is not None:
+        tls = spec.tls
+        return ["--scheduler", spec.scheduler] + (given([("--tls-ca-file", tls.ca_file), ("--tls-cert", tls.cert),
+                                                         ("--tls-key", tls.key)]) if tls is not None else [])
+    return given([("--workers", spec.workers)])
+
+
+def open_cluster(spec: ClusterSpec, quiet: bool = True, identity: dict | None = None):
+    """A Dask client for ``spec``: ``(client, cluster_or_None, threads)``.
+
+    ``threads`` is the number of worker threads to plan the window for: those
+    the cluster has now, or, for SLURM, those it will have once its jobs run
+    (tasks wait on the scheduler for workers still queued).  A ``tls://``
+    scheduler gets the certificates of :func:`scheduler_security`;
+    ``identity`` is that of a scheduler probed already (:func:`probe_scheduler`).
+    """
+    if spec.slurm is not None:
+        from distributed import Client
+
+        from foldfarm import slurm
+        from foldfarm.worker import DASK_SETTINGS
+
+        _quiet_logs(quiet)
+        with interrupts_held() as came:
+            cluster, threads = slurm.start(spec.slurm, DASK_SETTINGS)
+            client = Client(cluster)
+        if came:  # Ctrl-C while it started: stop now that it can be closed cleanly
+            disconnect(client, cluster)
+            raise KeyboardInterrupt
+        return client, cluster, threads
+    client, cluster = connect(spec.scheduler, spec.workers, quiet, identity=identity,
+                              security=scheduler_security(spec))
+    return client, cluster, max(1, sum(client.nthreads().values()))
+
+
+def scheduler_security(spec: ClusterSpec):
+    """The Dask ``Security`` for the ``tls://`` scheduler of ``spec`` (None for any other).
+
+    Its files are those of ``spec.tls``, else those of Dask's TLS
+    configuration; :class:`foldfarm.security.SecurityError` in one line if
+    they are missing.
+    """
+    from foldfarm import security
+
+    if not spec.scheduler or security.split_address(spec.scheduler)[0] != "tls":
+        return None
+    given = spec.tls or security.TlsFiles()
+    files = security.tls_files(given.ca_file, given.cert, given.key)
+    security.check_tls_files(files, spec.scheduler)
+    return security.client_security(files)
+
+
+def _quiet_logs(quiet: bool) -> None:
+    import logging
+
+    if quiet:
+        for name in ("distributed", "distributed.nanny", "distributed.scheduler", "distributed.worker",
+                     "distributed.deploy.adaptive", "dask_jobqueue"):
+            logging.getLogger(name).setLevel(logging.ERROR)

@@ -33,12 +33,13 @@ LONG, LONG_COUNT, LONG_TASK_NODES = "1x21", 6927964218, "300000"
 class Cluster:
     """A scheduler and worker processes on 127.0.0.1, stopped on close."""
 
-    def __init__(self, tmp: Path, workers: int = 2):
+    def __init__(self, tmp: Path, workers: int = 2, scheduler_args: tuple = (), worker_args: tuple = (),
+                 security=None):
         tmp.mkdir(parents=True, exist_ok=True)
         self.file = tmp / "scheduler.json"
         quiet = {"stdout": subprocess.DEVNULL, "stderr": subprocess.DEVNULL}
         self.scheduler = subprocess.Popen(DASK + ["--host", "127.0.0.1", "--port", "0", "--no-dashboard",
-                                                  "--scheduler-file", str(self.file)], **quiet)
+                                                  "--scheduler-file", str(self.file), *scheduler_args], **quiet)
         deadline = time.monotonic() + 60
         while not self.file.exists():
             assert time.monotonic() < deadline, "scheduler did not start"
@@ -47,12 +48,12 @@ class Cluster:
         self.address = json.loads(self.file.read_text())["address"]
         self.workers = [
             subprocess.Popen(WORKER + [self.address, "--nthreads", "1", "--no-nanny", "--no-dashboard",
-                                       "--host", "127.0.0.1"], **quiet)
+                                       "--host", "127.0.0.1", *worker_args], **quiet)
             for _ in range(workers)
         ]
         from distributed import Client
 
-        with Client(self.address, timeout="30s") as client:
+        with Client(self.address, timeout="30s", security=security) as client:
             client.wait_for_workers(workers, timeout=60)
 
     def close(self) -> None:

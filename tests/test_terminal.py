@@ -93,7 +93,7 @@ def ctrl_c_then_resume(tmp_path: Path, *where: str) -> str:
     code = term.wait()
     screen = term.text
     assert code == 130, screen
-    assert f"resume with: foldfarm resume 1 --store {url}" in screen, screen
+    assert f"resume with: foldfarm resume 1 --store {url} {' '.join(where)}\r\n" in screen, screen  # same cluster
     assert "Traceback" not in screen and "warning" not in screen.lower() and "KeyboardInterrupt" not in screen, screen
     with Store(url) as store:
         assert store.get_run(1).state == "stopped" and store.progress(1).tasks["running"] == 0

@@ -109,7 +109,15 @@ unreliable); use PostgreSQL when the driver may move between hosts.
 """
 
 from foldfarm.store.core import RunInfo, Store
-from foldfarm.store.errors import LeaseHeld, LeaseLost, ResultConflict, SchemaVersionError, StoreError
+from foldfarm.store.errors import (
+    LeaseHeld,
+    LeaseLost,
+    ResultConflict,
+    SchemaVersionError,
+    StoreError,
+    StoreUnavailable,
+    is_transient,
+)
 from foldfarm.store.leases import LeaseInfo
 from foldfarm.store.models import SCHEMA_VERSION
 from foldfarm.store.queries import (
@@ -147,10 +155,12 @@ __all__ = [
     "SchemaVersionError",
     "Store",
     "StoreError",
+    "StoreUnavailable",
     "TaskRecord",
     "TaskResult",
     "TaskRow",
     "TaskStat",
+    "is_transient",
     "redact",
     "resolve_store_url",
 ]

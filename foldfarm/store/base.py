@@ -11,7 +11,7 @@ from typing import Any, Self
 from sqlalchemy import Connection, insert, inspect, select, update
 from sqlalchemy.exc import IntegrityError, SQLAlchemyError
 
-from foldfarm.store.errors import SchemaVersionError, StoreError
+from foldfarm.store.errors import SchemaVersionError, StoreError, StoreUnavailable, is_transient
 from foldfarm.store.models import (
     INITIAL_COUNTERS,
     INITIAL_META,
@@ -88,7 +88,8 @@ class StoreBase:
         lines = [line for line in str(orig).splitlines() if line.strip()]
         detail = scrub(lines[0] if lines else type(orig).__name__, self.url)
         detail = detail.removeprefix("connection failed: ")  # psycopg's prefix; "connecting failed" says it
-        return StoreError(f"store {self.display_url}: {doing} failed: {detail}")
+        kind = StoreUnavailable if is_transient(exc) else StoreError
+        return kind(f"store {self.display_url}: {doing} failed: {detail}")
 
     @contextmanager
     def _write(self, doing: str) -> Iterator[Connection]:
