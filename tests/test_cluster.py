@@ -23,11 +23,12 @@ pytestmark = pytest.mark.slow
 
 DASK = [sys.executable, "-m", "distributed.cli.dask_scheduler"]
 WORKER = [sys.executable, "-m", "distributed.cli.dask_worker"]
-# Check values: OEIS A001418 (4x4) and A000136 (1x21).  LONG must run long enough to be interrupted once 40
-# tasks are done: 7.5e7 nodes in tasks of LONG_TASK_NODES, about 3 s on one core (3x9, used before, takes 2 s
-# since tree 2 halved its nodes; 1x22 takes 7 s, 3x10 15 s).
+# Check values: OEIS A001418 (4x4) and A000136 (1x22).  LONG must still run when it is interrupted (or its
+# cluster loses a worker, or SLURM replaces a job) after 40 tasks are done: 2.4e8 nodes in tasks of
+# LONG_TASK_NODES, about 6 s on one core.  3x9, used before, took 4 s; tree 2 halved its nodes (2 s), and
+# 1x21 (3 s) ended before the interruption took effect on a busy machine.
 SMALL, SMALL_COUNT = "4x4", 300608
-LONG, LONG_COUNT, LONG_TASK_NODES = "1x21", 6927964218, "300000"
+LONG, LONG_COUNT, LONG_TASK_NODES = "1x22", 22930109884, "1000000"
 
 
 class Cluster:

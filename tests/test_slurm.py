@@ -6,7 +6,7 @@ Needs a SLURM that takes jobs on this machine: ``bash deploy/slurm-single-node.s
 instead of a skip.  Every listener stays on 127.0.0.1: the scheduler and its
 dashboard, and each worker, nanny and worker dashboard (set below through
 dask-jobqueue's own configuration, as a user would).  Every run ends with
-the published total (OEIS A001416, 3x9) and a store whose done tasks
+the published total (OEIS A000136, LONG of test_cluster) and a store whose done tasks
 partition the tree.
 """
 
@@ -25,7 +25,7 @@ from pathlib import Path
 import pytest
 
 from foldfarm.batch import generic_script
-from test_cluster import LONG, LONG_COUNT, assert_partition, snapshot, wait_for_done
+from test_cluster import LONG, LONG_COUNT, LONG_TASK_NODES, assert_partition, snapshot, wait_for_done
 
 SLURM_ENV = "FOLDFARM_TEST_SLURM"
 ROOT = Path(__file__).resolve().parent.parent
@@ -99,7 +99,7 @@ def test_a_cancelled_worker_job_is_replaced_and_the_total_is_exact(slurm, slurm_
     name = slurm_env["FOLDFARM_TEST_JOB_NAME"]
     url = f"sqlite:///{tmp_path / 'slurm.sqlite'}"
     proc = subprocess.Popen([sys.executable, "-m", "foldfarm", "run", LONG, "--cluster", "slurm", "--jobs", "2",
-                             "--job-memory", "1GB", "--store", url, "--task-nodes", "300000", "--json", "--quiet"],
+                             "--job-memory", "1GB", "--store", url, "--task-nodes", LONG_TASK_NODES, "--json", "--quiet"],
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=slurm_env, cwd=tmp_path)
     try:
         wait_for_done(url, 1, 40, proc)
@@ -117,7 +117,7 @@ def test_a_cancelled_worker_job_is_replaced_and_the_total_is_exact(slurm, slurm_
             proc.kill()
             proc.wait()
     assert proc.returncode == 0, stderr
-    assert json.loads(stdout)["count"] == LONG_COUNT, f"{LONG}: OEIS A001416 publishes {LONG_COUNT}"
+    assert json.loads(stdout)["count"] == LONG_COUNT, f"{LONG}: OEIS A000136 publishes {LONG_COUNT}"
     assert replacements[0] > first[1]
     assert_partition(url, 1, LONG_COUNT)
     deadline = time.monotonic() + 30
@@ -132,7 +132,7 @@ def test_the_coordinator_job_stops_before_its_walltime_and_its_requeued_job_fini
     url = f"sqlite:///{tmp_path / 'requeue.sqlite'}"
     script = tmp_path / "tern.sbatch"
     made = foldfarm("run", LONG, "--cluster", "slurm", "--jobs", "2", "--job-memory", "1GB", "--store", url,
-                    "--task-nodes", "300000", "--json", "--quiet", "--sbatch", str(script), env=slurm_env,
+                    "--task-nodes", LONG_TASK_NODES, "--json", "--quiet", "--sbatch", str(script), env=slurm_env,
                     cwd=tmp_path)
     assert made.returncode == 0, made.stderr
     assert "sbatch" in made.stderr and not made.stdout
@@ -162,7 +162,7 @@ def test_the_coordinator_job_stops_before_its_walltime_and_its_requeued_job_fini
     assert _state(job) == "COMPLETED", log
     assert "start 1 on" in log and "start 2 on" in log and "requeued" in log, log
     assert f"resume with: foldfarm resume {run_id}" in log, log
-    assert json.loads(log.strip().splitlines()[-1])["count"] == LONG_COUNT, log  # OEIS A001416, 3x9
+    assert json.loads(log.strip().splitlines()[-1])["count"] == LONG_COUNT, log  # OEIS A000136
     assert_partition(url, run_id, LONG_COUNT)
     after = snapshot(url, run_id)
     assert all(after[p] == before[p] for p in before), "a task recorded done was counted again"
