@@ -51,6 +51,26 @@ def parse_prefix(text: str) -> Steps:
     return () if text == ROOT else tuple(int(part) for part in text[1:].split("/"))
 
 
+#: Decimal digits per step in a :func:`sort_key` (a step is at most 5 digits, see the prefix syntax).
+KEY_DIGITS = 5
+
+
+def sort_key(steps: Steps) -> str:
+    """A text that sorts, as plain bytes and under any collation of digits, as ``steps`` sorts as a tuple.
+
+    Each step is written as :data:`KEY_DIGITS` zero-padded digits, so a
+    node's key is a prefix of its descendants' keys: sorted by key, every
+    node comes directly before the run of its subtree's nodes.  The root's
+    key is empty.
+
+    >>> sort_key((1, 2, 10)), sort_key(())
+    ('000010000200010', '')
+    >>> sorted([(1, 10), (1, 2, 3), (1, 2), (2,)], key=sort_key)
+    [(1, 2), (1, 2, 3), (1, 10), (2,)]
+    """
+    return "".join(f"{step:0{KEY_DIGITS}d}" for step in steps)
+
+
 def is_ancestor(a: Steps, b: Steps) -> bool:
     """Whether node ``a``'s subtree contains node ``b`` (a node is its own ancestor)."""
     return len(a) <= len(b) and b[: len(a)] == a
