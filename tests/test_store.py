@@ -124,8 +124,8 @@ def test_schema_file_matches_models(new_store_url):
     engine.dispose()
 
     a, b = reflect(from_models), reflect(from_file)
-    assert set(a) == {"runs", "tasks", "audits", "leases", "meta", "id_counters"}
-    assert a["tasks"]["unique"] == [("run_id", "prefix")]
+    assert set(a) == {"runs", "tasks", "audits", "leases", "meta", "id_counters", "run_tallies"}
+    assert a["tasks"]["unique"] == [("run_id", "sort_key")]
     assert ("total", "text(64)", True) in a["runs"]["columns"]
     for table in a:
         assert a[table] == b[table], table
@@ -471,7 +471,7 @@ def test_other_schema_version_is_refused(new_store_url):
     with pytest.raises(SchemaVersionError) as info:
         Store(url)
     assert str(info.value) == (
-        f"the store {shown} has schema version 999 but this foldfarm reads version 1; "
+        f"the store {shown} has schema version 999 but this foldfarm reads version 2; "
         "open it with the foldfarm that wrote it, or use a new store"
     )
 
