@@ -87,11 +87,13 @@ def list_runs(conn: Connection) -> list[RunSummary]:
     stmt = (
         select(Run.id, Run.shape, Run.state, Run.total, *(getattr(RunTally, s) for s in TASK_STATES),
                RunTally.done_count, RunTally.split_count)
-        .join(RunTally, RunTally.run_id == Run.id)
+        .outerjoin(RunTally, RunTally.run_id == Run.id)
         .order_by(Run.id)
     )
     out = []
     for row in conn.execute(stmt):
+        if row.done_count is None:
+            _read_tallies(conn, row.id)  # says in one line that the row is missing
         per_state = {s: getattr(row, s) for s in TASK_STATES}
         counted = row.done_count + row.split_count
         out.append(RunSummary(row.id, row.shape, row.state, counted=counted, total=row.total, **per_state))

@@ -28,7 +28,19 @@ from __future__ import annotations
 
 import logging
 
-from sqlalchemy import Connection, Engine, MetaData, Table, bindparam, delete, insert, inspect, select, update
+from sqlalchemy import (
+    Connection,
+    Engine,
+    MetaData,
+    Table,
+    UniqueConstraint,
+    bindparam,
+    delete,
+    insert,
+    inspect,
+    select,
+    update,
+)
 from sqlalchemy.exc import SQLAlchemyError
 from sqlalchemy.ext.compiler import compiles
 from sqlalchemy.schema import AddConstraint, DDLElement, DropConstraint
@@ -219,9 +231,13 @@ def _alter_tasks(conn: Connection) -> int:
     for constraint in old.constraints:
         if constraint.name == _OLD_UNIQUE:
             conn.execute(DropConstraint(constraint))
+    # AddConstraint marks its constraint as made already (no longer part of CREATE TABLE): give it a
+    # copy on a table of its own, never the model's, or stores made later in this process would lack it.
+    new = Table("tasks", MetaData(), autoload_with=conn)
     for constraint in Task.__table__.constraints:
-        if constraint.name == "uq_tasks_run_sort_key":
-            conn.execute(AddConstraint(constraint))
+        if isinstance(constraint, UniqueConstraint):
+            copy = UniqueConstraint(*(new.c[c.name] for c in constraint.columns), name=constraint.name)
+            conn.execute(AddConstraint(copy))
     present = {index.name for index in old.indexes}
     for index in Task.__table__.indexes:
         if index.name not in present:
