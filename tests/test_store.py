@@ -21,6 +21,7 @@ from sqlalchemy.exc import IntegrityError
 import foldfarm.store
 import foldfarm.store.prefixes
 import foldfarm.store.rules
+import foldfarm.store.tallies
 from foldfarm.errors import UserError
 from foldfarm.store import (
     LeaseHeld,
@@ -607,7 +608,7 @@ def test_root_task_is_its_own_branch(store):
 
 
 def test_module_doctests():
-    for module in (foldfarm.store, foldfarm.store.prefixes, foldfarm.store.rules):
+    for module in (foldfarm.store, foldfarm.store.prefixes, foldfarm.store.rules, foldfarm.store.tallies):
         failed, attempted = doctest.testmod(module)
         assert attempted > 0 and failed == 0, module.__name__
 
