@@ -11,9 +11,9 @@ from typing import Any, Self
 from sqlalchemy import Connection, insert, inspect, select, update
 from sqlalchemy.exc import IntegrityError, SQLAlchemyError
 
-from foldfarm.store.errors import SchemaVersionError, StoreError, StoreUnavailable, is_transient
 from foldfarm.prefix import is_ancestor, sort_key
 from foldfarm.store import tallies
+from foldfarm.store.errors import SchemaVersionError, StoreError, StoreUnavailable, is_transient
 from foldfarm.store.models import (
     INITIAL_COUNTERS,
     INITIAL_META,

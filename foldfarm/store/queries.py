@@ -12,6 +12,7 @@ below 2**63 for up to 2**31 tasks) and recombined in Python.
 
 from __future__ import annotations
 
+import heapq
 from dataclasses import dataclass, field
 from datetime import datetime
 from typing import Literal
@@ -198,18 +199,20 @@ _RECORD_COLUMNS = [getattr(Task, name) for name in TaskRecord.__dataclass_fields
 
 
 def run_ids(run_id: int, legacy_ids: int = 0):
-    """A condition on ``tasks.id`` true for every id run ``run_id`` may hold: the primary key's range.
+    """The run's tasks as a condition that lets a listing in id order walk the primary key.
 
-    Said beside ``run_id = ...``, it lets a listing in id order walk the
-    primary key over this run's ids only, not over every run's before it.
+    Every id of the run's own range belongs to the run, so in a store made
+    as version 2 the range alone picks its tasks (said beside ``run_id =``,
+    the planners preferred another index and sorted the run).  Tasks from
+    before version 2 (ids up to ``legacy_ids``) need the run id too.
     """
     own = Task.id.between(run_id * TASK_ID_SPAN + 1, (run_id + 1) * TASK_ID_SPAN - 1)
-    return or_(Task.id <= legacy_ids, own) if legacy_ids else own
+    return (Task.run_id == run_id) & or_(Task.id <= legacy_ids, own) if legacy_ids else own
 
 
 def task_records(run_id: int, legacy_ids: int = 0):
     """SELECT of every column of a run's tasks, in id order (stream it)."""
-    return select(*_RECORD_COLUMNS).where(Task.run_id == run_id, run_ids(run_id, legacy_ids)).order_by(Task.id)
+    return select(*_RECORD_COLUMNS).where(run_ids(run_id, legacy_ids)).order_by(Task.id)
 
 
 def check_rows(run_id: int):
@@ -243,16 +246,23 @@ def task_listing(
     if states:
         where.append(Task.state.in_(states))
     if order == "id":
-        stmt = select(*_RECORD_COLUMNS).where(*where, run_ids(run_id, legacy_ids)).order_by(Task.id)
-        return [TaskRecord(*row) for row in conn.execute(stmt.limit(limit))]
+        # With states: the (run_id, state, id) index; without: the primary key over the run's range.
+        stmt = select(*_RECORD_COLUMNS).where(*(where if states else [run_ids(run_id, legacy_ids)]))
+        return [TaskRecord(*row) for row in conn.execute(stmt.order_by(Task.id).limit(limit))]
     column = _SORTED[order]
     stmt = select(*_RECORD_COLUMNS).where(*where, column.is_not(None)).order_by(column.desc(), Task.id)
     out = [TaskRecord(*row) for row in conn.execute(stmt.limit(limit))]
-    if limit is None or len(out) < limit:
-        rest = select(*_RECORD_COLUMNS).where(*where, column.is_(None), run_ids(run_id, legacy_ids))
-        rest = rest.order_by(Task.id).limit(None if limit is None else limit - len(out))
-        out += [TaskRecord(*row) for row in conn.execute(rest)]
-    return out
+    if limit is not None and len(out) == limit:
+        return out
+    # Done and split tasks always have all three values, so the rest are open tasks: per state from
+    # the (run_id, state, id) index, merged by id.
+    rest = limit if limit is None else limit - len(out)
+    lists = []
+    for state in OPEN_STATES:
+        if not states or state in states:
+            part = select(*_RECORD_COLUMNS).where(Task.run_id == run_id, Task.state == state, column.is_(None))
+            lists.append([TaskRecord(*row) for row in conn.execute(part.order_by(Task.id).limit(rest))])
+    return out + list(heapq.merge(*lists, key=lambda t: t.id))[:rest]
 
 
 def audit_records(conn: Connection, run_id: int) -> list[AuditRecord]:
