@@ -1,4 +1,4 @@
--- foldfarm results store, schema version 1.
+-- foldfarm results store, schema version 2 (foldfarm upgrade turns a version 1 store into this).
 --
 -- The same tables as foldfarm/store/models.py, as DDL that runs unchanged on
 -- SQLite (3.35+) and PostgreSQL (12+), one statement at a time, on an empty
@@ -8,19 +8,30 @@
 --
 -- Conventions
 --   * Times are UTC, without a time zone.
---   * Ids are allocated by foldfarm from id_counters, not by the database
---     (SQLite and PostgreSQL share no auto-increment syntax).
+--   * Ids are allocated by foldfarm, not by the database (SQLite and
+--     PostgreSQL share no auto-increment syntax).  Runs and audits take theirs
+--     from id_counters.  A run numbers its own tasks: task k of run r has the
+--     id r * 10000000000 + k, and run_tallies.tasks_numbered of the run says
+--     how many numbers it has handed out, in the same transaction as the
+--     insert, so a number up to it that no task holds is a deleted task.  (A
+--     store upgraded from version 1 keeps the ids of its older tasks, 1 up to
+--     the meta row legacy_task_ids.)
+--   * run_tallies holds, per run, the tasks in each state and the exact sums
+--     below, kept by the transactions that change the tasks: what the runs
+--     list and a run's progress read.
 --   * A task is named within its run by its prefix: '/' is the whole search
 --     tree, '/1/2/4' the subtree below the choices 1, 2, 4.
 --   * Foldings counted so far in a run =
 --         sum(count) over tasks in state 'done' or 'split'
 --     (a split task's count is the partial count it made before its budget
 --     ran out; its remainder children cover the rest of its subtree).
---   * An exact run total may exceed 64 bits, so runs.total is decimal text.
+--   * An exact run total may exceed 64 bits, so runs.total is decimal text,
+--     and so are the sums in run_tallies.
 --
 -- Example (either shell):
---   SELECT state, COUNT(*) FROM tasks WHERE run_id = 1 GROUP BY state;
---   SELECT prefix, seconds FROM tasks WHERE run_id = 1 ORDER BY seconds DESC LIMIT 10;
+--   SELECT pending, running, done, split, failed, done_count, split_count FROM run_tallies WHERE run_id = 1;
+--   SELECT prefix, seconds FROM tasks WHERE run_id = 1 AND seconds IS NOT NULL ORDER BY seconds DESC, id LIMIT 10;
+--   SELECT prefix, state, count FROM tasks WHERE run_id = 1 ORDER BY sort_key;   -- tree order
 
 
 -- One count of one map shape.
@@ -49,6 +60,7 @@ CREATE TABLE tasks (
     id            BIGINT        NOT NULL PRIMARY KEY,
     run_id        BIGINT        NOT NULL REFERENCES runs (id),
     prefix        TEXT          NOT NULL,   -- '/' or '/a/b/...'
+    sort_key      TEXT          NOT NULL,   -- each step as 5 digits: '/1/2/10' is '000010000200010'; sorts in tree order
     depth         INTEGER       NOT NULL,   -- number of prefix components
     branch        INTEGER,                  -- first prefix component; NULL for '/'
     parent_id     BIGINT        REFERENCES tasks (id),  -- the split task this one is a remainder of
@@ -62,7 +74,7 @@ CREATE TABLE tasks (
     created_at    TIMESTAMP     NOT NULL,
     started_at    TIMESTAMP,
     finished_at   TIMESTAMP,
-    CONSTRAINT uq_tasks_run_prefix UNIQUE (run_id, prefix),
+    CONSTRAINT uq_tasks_run_sort_key UNIQUE (run_id, sort_key),   -- one task per node (and tree order)
     CONSTRAINT ck_tasks_state CHECK (state IN ('pending', 'running', 'done', 'split', 'failed')),
     CONSTRAINT ck_tasks_count_present CHECK ((state IN ('done', 'split') AND count IS NOT NULL) OR (state IN ('pending', 'running', 'failed') AND count IS NULL)),
     CONSTRAINT ck_tasks_nonnegative CHECK (count >= 0 AND nodes >= 0 AND depth >= 0 AND attempts >= 0)
@@ -73,6 +85,11 @@ CREATE INDEX ix_tasks_run_state ON tasks (run_id, state, id);
 
 -- Remainder children of a split task.
 CREATE INDEX ix_tasks_parent ON tasks (parent_id);
+
+-- The largest, longest and latest tasks of a run, read from the top (only tasks that have the value).
+CREATE INDEX ix_tasks_run_count ON tasks (run_id, count DESC, id) WHERE count IS NOT NULL;
+CREATE INDEX ix_tasks_run_seconds ON tasks (run_id, seconds DESC, id) WHERE seconds IS NOT NULL;
+CREATE INDEX ix_tasks_run_finished ON tasks (run_id, finished_at DESC, id) WHERE finished_at IS NOT NULL;
 
 -- A second computation of a done task, and whether it agreed.
 CREATE TABLE audits (
@@ -97,19 +114,40 @@ CREATE TABLE leases (
     heartbeat_at  TIMESTAMP     NOT NULL
 );
 
--- Facts about the store; foldfarm refuses a store whose schema_version it does not know.
+-- Facts about the store: schema_version (foldfarm refuses one it does not know), and in a store
+-- upgraded from version 1 legacy_task_ids (task ids 1 .. this were handed out by version 1).
 CREATE TABLE meta (
     name          VARCHAR(64)   NOT NULL PRIMARY KEY,
     value         VARCHAR(256)  NOT NULL
 );
 
--- Next free id per table.
+-- A run's task numbers and tallies; one row per run, made with the run.
+CREATE TABLE run_tallies (
+    run_id          BIGINT        NOT NULL PRIMARY KEY REFERENCES runs (id),
+    tasks_numbered  BIGINT        NOT NULL,   -- task ids handed out: run_id * 10000000000 + 1 .. + this
+    pending         BIGINT        NOT NULL,   -- tasks in each state
+    running         BIGINT        NOT NULL,
+    done            BIGINT        NOT NULL,
+    split           BIGINT        NOT NULL,
+    failed          BIGINT        NOT NULL,
+    done_count      VARCHAR(64)   NOT NULL,   -- sum of count over done tasks, decimal digits
+    split_count     VARCHAR(64)   NOT NULL,   -- sum of partial count over split tasks, decimal digits
+    nodes           VARCHAR(64)   NOT NULL,   -- sum of nodes over done and split tasks, decimal digits
+    seconds         DOUBLE PRECISION NOT NULL,  -- sum of seconds over done and split tasks
+    audits          BIGINT        NOT NULL,   -- audits of the run's tasks
+    mismatches      BIGINT        NOT NULL,   -- of which disagreed with the recorded count
+    CONSTRAINT ck_run_tallies_nonnegative CHECK (tasks_numbered >= 0 AND pending >= 0 AND running >= 0 AND done >= 0 AND split >= 0 AND failed >= 0 AND seconds >= 0 AND audits >= 0 AND mismatches >= 0),
+    CONSTRAINT ck_run_tallies_done_count_digits CHECK (done_count IS NULL OR (LENGTH(done_count) BETWEEN 1 AND 64 AND TRIM(done_count, '0123456789') = '' AND (done_count = '0' OR SUBSTR(done_count, 1, 1) <> '0'))),
+    CONSTRAINT ck_run_tallies_split_count_digits CHECK (split_count IS NULL OR (LENGTH(split_count) BETWEEN 1 AND 64 AND TRIM(split_count, '0123456789') = '' AND (split_count = '0' OR SUBSTR(split_count, 1, 1) <> '0'))),
+    CONSTRAINT ck_run_tallies_nodes_digits CHECK (nodes IS NULL OR (LENGTH(nodes) BETWEEN 1 AND 64 AND TRIM(nodes, '0123456789') = '' AND (nodes = '0' OR SUBSTR(nodes, 1, 1) <> '0')))
+);
+
+-- Next free id of runs and audits.
 CREATE TABLE id_counters (
     name          VARCHAR(16)   NOT NULL PRIMARY KEY,
     next_id       BIGINT        NOT NULL
 );
 
-INSERT INTO meta (name, value) VALUES ('schema_version', '1');
+INSERT INTO meta (name, value) VALUES ('schema_version', '2');
 INSERT INTO id_counters (name, next_id) VALUES ('audits', 1);
 INSERT INTO id_counters (name, next_id) VALUES ('runs', 1);
-INSERT INTO id_counters (name, next_id) VALUES ('tasks', 1);

@@ -17,8 +17,9 @@ feeds them.
     plan) partition the search tree; every split task's children are
     exactly the remainder the kernel defines for it (see
     :func:`split_problems`); no two done tasks overlap; and no task id in
-    the run's range is missing from the store (ids are handed out
-    consecutively and never freed, so a gap is a deleted task).
+    the run's range is missing from the store (a run numbers its tasks
+    consecutively and never frees a number, so a gap is a deleted task:
+    :meth:`foldfarm.store.Store.missing_task_ids`).
 ``divisibility``
     Every task count, and so the total, is a multiple of the run's own
     :func:`symmetry_factor`: the number of foldings each leaf of the
@@ -711,10 +712,7 @@ def verify_run(store, run_id: int, *, client=None, audit_fraction: float | None 
         positions = sample_positions(store.progress(run_id).tasks["done"], fraction, seed)
     kids = TreeChildren(sides, tree, None if client is None else _on_a_worker(client, sides, tree))
     scan = scan_tasks(store.check_rows(run_id), symmetry_factor(sides, tree), positions)
-    gaps = []
-    if scan.first_id is not None:
-        gaps = [(g.first, g.last) for g in store.task_id_gaps(scan.first_id, scan.last_id)
-                if run_id in (g.run_before, g.run_after)]
+    gaps = [(g.first, g.last) for g in store.missing_task_ids(run_id)]
     checks = {
         "total": total_check(scan, run.total, finished),
         "completeness": completeness_check(scan, kids, cells, gaps),

@@ -508,6 +508,15 @@ def status_cmd(
                    f"{r.failed:>6,}  {r.total if r.total is not None else r.counted}")
 
 
+@app.command("upgrade")
+@user_errors
+def upgrade_cmd(store: str = StoreOpt) -> None:
+    """Upgrade a store made by an older foldfarm to this version's schema, in one transaction."""
+    from foldfarm.store import upgrade_store
+
+    typer.echo(upgrade_store(store))
+
+
 # ---- checks and queries -----------------------------------------------------------------
 
 def _whole(text: str | None, option: str, minimum: int = 0) -> int | None:

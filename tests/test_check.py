@@ -359,9 +359,10 @@ def test_store_task_queries(counted):
         store.tasks(999)
     streamed = list(store.iter_tasks(run_id))
     assert streamed == everything
-    rows = list(store.check_rows(run_id))
+    rows = list(store.check_rows(run_id))  # in tree order: prefixes as tuples of steps
+    in_tree_order = sorted(everything, key=lambda t: parse_prefix(t.prefix))
     assert [(r.id, r.prefix, r.state, r.count, r.parent_id) for r in rows] == \
-        [(t.id, t.prefix, t.state, t.count, t.parent_id) for t in everything]
+        [(t.id, t.prefix, t.state, t.count, t.parent_id) for t in in_tree_order]
     assert sum(r.count for r in rows if r.state in ("done", "split")) == SHAPE_COUNT  # OEIS A001416
     assert store.runs_of_shape(SHAPE) == [(run_id, "verified")] and store.runs_of_shape("5x5") == []
     assert store.audits(run_id) == []
@@ -380,7 +381,10 @@ def test_store_id_gaps(counted):
     gaps = store.task_id_gaps(ids[0], ids[-1])
     assert [(g.first, g.last, g.run_before, g.run_after) for g in gaps] == \
         [(pair, pair + 1, run_id, run_id), (single, single, run_id, run_id)]
-    assert store.task_id_gaps(ids[-1] + 1, ids[-1] + 3)[0].run_after is None  # ids not handed out yet
+    assert store.task_id_gaps(ids[-1] + 1, ids[-1] + 3) == []  # ids not handed out yet are no gap
+    assert [(g.first, g.last) for g in store.missing_task_ids(run_id)] == [(pair, pair + 1), (single, single)]
+    change(store, delete(Task).where(Task.id == ids[-1]))  # the last task: no neighbour after it, still found
+    assert [(g.first, g.last) for g in store.missing_task_ids(run_id)][-1] == (ids[-1], ids[-1])
 
 
 # -- audits and the other side order on a real cluster -----------------------------------------------

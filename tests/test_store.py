@@ -21,6 +21,7 @@ from sqlalchemy.exc import IntegrityError
 import foldfarm.store
 import foldfarm.store.prefixes
 import foldfarm.store.rules
+import foldfarm.store.tallies
 from foldfarm.errors import UserError
 from foldfarm.store import (
     LeaseHeld,
@@ -124,8 +125,8 @@ def test_schema_file_matches_models(new_store_url):
     engine.dispose()
 
     a, b = reflect(from_models), reflect(from_file)
-    assert set(a) == {"runs", "tasks", "audits", "leases", "meta", "id_counters"}
-    assert a["tasks"]["unique"] == [("run_id", "prefix")]
+    assert set(a) == {"runs", "tasks", "audits", "leases", "meta", "id_counters", "run_tallies"}
+    assert a["tasks"]["unique"] == [("run_id", "sort_key")]
     assert ("total", "text(64)", True) in a["runs"]["columns"]
     for table in a:
         assert a[table] == b[table], table
@@ -471,7 +472,7 @@ def test_other_schema_version_is_refused(new_store_url):
     with pytest.raises(SchemaVersionError) as info:
         Store(url)
     assert str(info.value) == (
-        f"the store {shown} has schema version 999 but this foldfarm reads version 1; "
+        f"the store {shown} has schema version 999 but this foldfarm reads version 2; "
         "open it with the foldfarm that wrote it, or use a new store"
     )
 
@@ -607,7 +608,7 @@ def test_root_task_is_its_own_branch(store):
 
 
 def test_module_doctests():
-    for module in (foldfarm.store, foldfarm.store.prefixes, foldfarm.store.rules):
+    for module in (foldfarm.store, foldfarm.store.prefixes, foldfarm.store.rules, foldfarm.store.tallies):
         failed, attempted = doctest.testmod(module)
         assert attempted > 0 and failed == 0, module.__name__
 

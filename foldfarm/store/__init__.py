@@ -35,8 +35,13 @@ Shared state
     second computations of done tasks and whether they matched.
 ``leases``
     one row per driven run: holder, acquired and heartbeat times.
+``run_tallies``
+    one row per run: how many task numbers it has handed out (its task ids,
+    see :mod:`foldfarm.store.models`), tasks per state, exact sums of done
+    and partial counts, nodes, seconds, audits; changed in the same
+    transaction as the tasks, read by the runs list and a run's progress.
 ``meta``, ``id_counters``
-    schema version; next free ids.
+    schema version; next free ids of runs and audits.
 
 The invariant
 -------------
@@ -133,6 +138,8 @@ from foldfarm.store.queries import (
 )
 from foldfarm.store.rules import Recorded
 from foldfarm.store.tasks import BatchReport, TaskResult, TaskRow
+from foldfarm.store.tallies import Tallies
+from foldfarm.store.upgrade import upgrade_store
 from foldfarm.store.urls import ENV_VAR, redact, resolve_store_url
 
 __all__ = [
@@ -160,7 +167,9 @@ __all__ = [
     "TaskResult",
     "TaskRow",
     "TaskStat",
+    "Tallies",
     "is_transient",
     "redact",
     "resolve_store_url",
+    "upgrade_store",
 ]

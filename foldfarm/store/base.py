@@ -11,18 +11,22 @@ from typing import Any, Self
 from sqlalchemy import Connection, insert, inspect, select, update
 from sqlalchemy.exc import IntegrityError, SQLAlchemyError
 
+from foldfarm.prefix import is_ancestor, sort_key
+from foldfarm.store import tallies
 from foldfarm.store.errors import SchemaVersionError, StoreError, StoreUnavailable, is_transient
 from foldfarm.store.models import (
     INITIAL_COUNTERS,
     INITIAL_META,
+    LEGACY_TASK_IDS,
     SCHEMA_VERSION,
+    TASK_ID_SPAN,
     Base,
     IdCounter,
     Meta,
     Run,
     Task,
 )
-from foldfarm.store.prefixes import check_prefix, is_ancestor, prefix_branch, prefix_depth
+from foldfarm.store.prefixes import steps_of
 from foldfarm.store.urls import make_engine, redact, resolve_store_url, scrub
 
 log = logging.getLogger("foldfarm.store")
@@ -52,6 +56,21 @@ def worker_address(value: object) -> str | None:
     return None if value is None else short_text(value, "worker address", 256)
 
 
+def check_version(found: str | None, display_url: str) -> None:
+    """Refuse a store of another schema version in one line (naming the upgrade of a version 1 store)."""
+    if found == str(SCHEMA_VERSION):
+        return
+    if found == "1":
+        raise SchemaVersionError(
+            f"the store {display_url} has schema version 1 and this foldfarm reads version {SCHEMA_VERSION}: "
+            f"upgrade it first with: foldfarm upgrade --store {display_url}"
+        )
+    raise SchemaVersionError(
+        f"the store {display_url} has schema version {found or 'unknown'} but this foldfarm "
+        f"reads version {SCHEMA_VERSION}; open it with the foldfarm that wrote it, or use a new store"
+    )
+
+
 class StoreBase:
     """Engine, schema check and transaction helpers; :class:`foldfarm.store.Store` adds the protocol."""
 
@@ -61,6 +80,8 @@ class StoreBase:
         self.display_url = redact(self.url)
         self.engine = make_engine(self.url, create)
         self._writer = self.engine.execution_options(foldfarm_write=True)
+        #: Task ids ``1 ..`` this were handed out before version 2 (0: a store made as version 2).
+        self.legacy_task_ids = 0
         try:
             self._open_schema(create)
         except BaseException:
@@ -123,15 +144,13 @@ class StoreBase:
             if "meta" not in present:
                 raise StoreError(f"{self.display_url} is not a foldfarm store (it has no meta table)")
             found = conn.execute(select(Meta.value).where(Meta.name == "schema_version")).scalar_one_or_none()
-            if found != str(SCHEMA_VERSION):
-                raise SchemaVersionError(
-                    f"the store {self.display_url} has schema version {found or 'unknown'} but this foldfarm "
-                    f"reads version {SCHEMA_VERSION}; open it with the foldfarm that wrote it, or use a new store"
-                )
+            check_version(found, self.display_url)
             if present != ours:
                 raise StoreError(
                     f"the store {self.display_url} is incomplete: table(s) {', '.join(sorted(ours - present))} missing"
                 )
+            legacy = conn.execute(select(Meta.value).where(Meta.name == LEGACY_TASK_IDS)).scalar_one_or_none()
+            self.legacy_task_ids = int(legacy or 0)
 
     @staticmethod
     def _allocate_ids(conn: Connection, table: str, n: int) -> int:
@@ -163,28 +182,41 @@ class StoreBase:
         parent_prefix: str | None,
         now: datetime,
         chunk_size: int = INSERT_CHUNK,
+        delta: tallies.Delta | None = None,
     ) -> int:
-        """Insert pending tasks in chunks of ``chunk_size`` rows; return how many."""
+        """Insert pending tasks in chunks of ``chunk_size`` rows; return how many.
+
+        Each chunk takes the next numbers of the run (see :data:`TASK_ID_SPAN`)
+        and counts its tasks pending in the run's tallies; ``delta``, the
+        caller's own change to the tallies, rides along with the first chunk.
+        """
         added = 0
+        parent_steps = None if parent_prefix is None else steps_of(parent_prefix)
         for chunk in chunks(prefixes, chunk_size):
-            for prefix in chunk:
-                check_prefix(prefix)
-                if parent_prefix is not None and not is_ancestor(parent_prefix, prefix):
-                    raise StoreError(f"prefix {prefix} is not inside its parent task's prefix {parent_prefix}")
-            first = self._allocate_ids(conn, "tasks", len(chunk))
+            steps = [steps_of(prefix) for prefix in chunk]
+            if parent_steps is not None:
+                for prefix, s in zip(chunk, steps):
+                    if s == parent_steps or not is_ancestor(parent_steps, s):
+                        raise StoreError(f"prefix {prefix} is not inside its parent task's prefix {parent_prefix}")
+            change = delta if delta is not None else tallies.Delta()
+            delta = None
+            change.numbered += len(chunk)
+            change.states["pending"] += len(chunk)
+            first = run_id * TASK_ID_SPAN + tallies.apply(conn, run_id, change).tasks_numbered + 1
             rows = [
                 {
                     "id": first + i,
                     "run_id": run_id,
                     "prefix": prefix,
-                    "depth": prefix_depth(prefix),
-                    "branch": prefix_branch(prefix),
+                    "sort_key": sort_key(s),
+                    "depth": len(s),
+                    "branch": s[0] if s else None,
                     "parent_id": parent_id,
                     "state": "pending",
                     "attempts": 0,
                     "created_at": now,
                 }
-                for i, prefix in enumerate(chunk)
+                for i, (prefix, s) in enumerate(zip(chunk, steps))
             ]
             try:
                 conn.execute(insert(Task), rows)
@@ -194,4 +226,6 @@ class StoreBase:
                     f"{chunk[0]} .. {chunk[-1]}, or lists one twice; nothing was added"
                 ) from None
             added += len(chunk)
+        if delta is not None:  # nothing to insert: the caller's change still counts
+            tallies.apply(conn, run_id, delta)
         return added

@@ -12,14 +12,15 @@ from dataclasses import dataclass
 from datetime import datetime
 from typing import Any
 
-from sqlalchemy import case, func, insert, select, update
+from sqlalchemy import insert, update
 from sqlalchemy.exc import IntegrityError, SQLAlchemyError
 
 from foldfarm.store import leases, queries
+from foldfarm.store import tallies as _tallies
 from foldfarm.store.base import short_text, worker_address
 from foldfarm.store.errors import StoreError
 from foldfarm.store.leases import LeaseInfo
-from foldfarm.store.models import Audit, Run, Task, check_json
+from foldfarm.store.models import Audit, Run, RunTally, check_json
 from foldfarm.store.rules import (
     OPEN_STATES,
     TASK_STATES,
@@ -82,6 +83,7 @@ class Store(TaskStore):
                     verification="unchecked",
                 )
             )
+            conn.execute(insert(RunTally).values(**_tallies.initial(run_id)))
         log.info("created run %d (%s) in %s", run_id, shape, self.display_url)
         return run_id
 
@@ -123,9 +125,7 @@ class Store(TaskStore):
         with self._write("finishing a run") as conn:
             run = self._run(conn, run_id, lock=True)
             check_run_transition(run_id, run.state, "done")
-            still_open = conn.execute(
-                select(func.count(Task.id)).where(Task.run_id == run_id, Task.state.in_(OPEN_STATES))
-            ).scalar_one()
+            still_open = sum(_tallies.read(conn, run_id).tasks[state] for state in OPEN_STATES)
             if still_open:
                 raise StoreError(f"run {run_id} still has {still_open} open task(s); finish it once all are counted")
             values: dict[str, Any] = {"state": "done", "total": total, "finished_at": utc(now)}
@@ -175,6 +175,7 @@ class Store(TaskStore):
             if task.state != "done":
                 raise StoreError(f"task {task_id} ({task.prefix}) is {task.state}; only done tasks can be audited")
             matched = task.count == count
+            _tallies.apply(conn, task.run_id, _tallies.Delta(audits=1, mismatches=int(not matched)))
             audit_id = self._allocate_ids(conn, "audits", 1)
             conn.execute(
                 insert(Audit).values(
@@ -193,15 +194,11 @@ class Store(TaskStore):
         return matched
 
     def audit_summary(self, run_id: int) -> tuple[int, int]:
-        """``(audits, mismatches)`` recorded for a run's tasks."""
-        mismatched = func.sum(case((Audit.matched.is_(False), 1), else_=0))
-        stmt = (
-            select(func.count(Audit.id), mismatched).join(Task, Task.id == Audit.task_id).where(Task.run_id == run_id)
-        )
+        """``(audits, mismatches)`` recorded for a run's tasks (from its tallies)."""
         with self._read("summarising audits") as conn:
             self._run(conn, run_id)
-            n, bad = conn.execute(stmt).one()
-        return int(n), int(bad or 0)
+            numbers = _tallies.read(conn, run_id)
+        return numbers.audits, numbers.mismatches
 
     # -- lease --------------------------------------------------------------
 
@@ -248,15 +245,27 @@ class Store(TaskStore):
     # -- queries ------------------------------------------------------------
 
     def list_runs(self) -> list[queries.RunSummary]:
-        """Every run with tasks per state and foldings counted so far."""
+        """Every run with tasks per state and foldings counted so far (from the tallies: one row a run)."""
         with self._read("listing runs") as conn:
             return queries.list_runs(conn)
 
     def progress(self, run_id: int) -> queries.Progress:
-        """Tasks per state, exact foldings counted, nodes and core-seconds of a run."""
+        """Tasks per state, exact foldings counted, nodes and core-seconds of a run (from its tallies)."""
         with self._read("reading progress") as conn:
             run = self._run(conn, run_id)
             return queries.progress(conn, run_id, run.shape, run.state)
+
+    def tallies(self, run_id: int) -> _tallies.Tallies:
+        """The run's tallies as the store keeps them (see :mod:`foldfarm.store.tallies`)."""
+        with self._read("reading tallies") as conn:
+            self._run(conn, run_id)
+            return _tallies.read(conn, run_id)
+
+    def recount_tallies(self, run_id: int) -> _tallies.Tallies:
+        """The run's tallies counted afresh from its tasks and audits (a scan of the run, for checks)."""
+        with self._read("recounting tallies") as conn:
+            self._run(conn, run_id)
+            return _tallies.recount(conn, run_id, self.legacy_task_ids)
 
     def slowest_tasks(self, run_id: int, k: int = 10) -> list[queries.TaskStat]:
         """The ``k`` tasks that took the most seconds."""
@@ -291,15 +300,26 @@ class Store(TaskStore):
             raise StoreError(f"a task limit must be 0 or more, got {limit}")
         with self._read("listing tasks") as conn:
             self._run(conn, run_id)
-            return queries.task_listing(conn, run_id, states, order, limit)
+            return queries.task_listing(conn, run_id, states, order, limit, self.legacy_task_ids)
 
     def iter_tasks(self, run_id: int) -> Iterator[queries.TaskRecord]:
-        """Stream every task of a run with all its columns, in id order (for exports)."""
+        """Stream every task of a run with all its columns, in id order (for exports).
+
+        Rows arrive a few thousand at a time (a server-side cursor on
+        PostgreSQL), so memory stays flat however many tasks the run has.
+        """
         self.get_run(run_id)  # a missing run fails now, not at the first next()
-        return (queries.TaskRecord(*row) for row in self._stream(queries.task_records(run_id)))
+        stmt = queries.task_records(run_id, self.legacy_task_ids)
+        return (queries.TaskRecord(*row) for row in self._stream(stmt))
 
     def check_rows(self, run_id: int) -> Iterator[queries.CheckRow]:
-        """Stream ``(id, prefix, state, count, parent_id, worker)`` of a run's tasks in id order."""
+        """Stream ``(id, prefix, state, count, parent_id, worker)`` of a run's tasks in tree order.
+
+        Tree order is the order of the prefixes as tuples of steps
+        (:func:`foldfarm.prefix.sort_key`, through an index): every node
+        comes directly before the tasks inside its subtree.  Streamed like
+        :meth:`iter_tasks`.
+        """
         self.get_run(run_id)
         return (queries.CheckRow(*row) for row in self._stream(queries.check_rows(run_id)))
 
@@ -315,6 +335,17 @@ class Store(TaskStore):
             return queries.runs_of_shape(conn, shape)
 
     def task_id_gaps(self, first: int, last: int) -> list[queries.IdGap]:
-        """Ranges of task ids in ``first..last`` held by no task of any run (deleted tasks)."""
+        """Ranges of task ids in ``first..last`` handed out but held by no task (deleted tasks)."""
         with self._read("looking for deleted tasks") as conn:
-            return queries.id_gaps(conn, first, last)
+            return queries.id_gaps(conn, first, last, self.legacy_task_ids)
+
+    def missing_task_ids(self, run_id: int) -> list[queries.IdGap]:
+        """Ranges of task ids handed out to run ``run_id`` that no task holds (deleted tasks).
+
+        The run's own range (see :data:`foldfarm.store.models.TASK_ID_SPAN`)
+        up to its last number, so a deleted last task is found too; in a store
+        upgraded from version 1, also the holes between the run's older tasks.
+        """
+        with self._read("looking for deleted tasks") as conn:
+            self._run(conn, run_id)
+            return queries.run_id_gaps(conn, run_id, self.legacy_task_ids)

@@ -26,6 +26,11 @@ def _steps(text: object) -> tuple[int, ...]:
         raise StoreError(str(exc)) from None
 
 
+def steps_of(text: object) -> tuple[int, ...]:
+    """The steps of a prefix text; :class:`StoreError` if it is not one."""
+    return _steps(text)
+
+
 def check_prefix(text: object) -> str:
     """Return ``text`` if it is a prefix, else raise :class:`StoreError`."""
     _steps(text)

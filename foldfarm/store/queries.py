@@ -1,30 +1,29 @@
 """Read-only questions about runs, as plain functions of a connection.
 
-Sums of counts are exact on both back ends: SQLite's SUM fails past 2**63,
-so each count is summed as ``count // 2**32`` and ``count % 2**32`` (each
-part stays far below 2**63 for up to 2**31 tasks) and recombined in Python.
+Each question is answered from bounded work, whatever the size of the run:
+the runs list and a run's progress read the tallies (:mod:`foldfarm.store.tallies`),
+the longest, largest or latest tasks walk an index from its top
+(``ix_tasks_run_count``, ``_seconds``, ``_finished``), and the listings that
+read every task stream them.  Sums of counts over a scan (branch totals) are
+exact on both back ends: SQLite's SUM fails past 2**63, so each count is
+summed as ``count // 2**32`` and ``count % 2**32`` (each part stays far
+below 2**63 for up to 2**31 tasks) and recombined in Python.
 """
 
 from __future__ import annotations
 
+import heapq
 from dataclasses import dataclass, field
 from datetime import datetime
 from typing import Literal
 
-from sqlalchemy import Connection, case, func, select
+from sqlalchemy import Connection, case, func, or_, select
 
-from foldfarm.store.models import Audit, Run, Task
-from foldfarm.store.rules import COUNTED_STATES, OPEN_STATES, TASK_STATES
-
-_LOW = 2**32
-
-
-def _split_sum(column):
-    return func.sum(column // _LOW), func.sum(column % _LOW)
-
-
-def _join_sum(high, low) -> int:
-    return int(high or 0) * _LOW + int(low or 0)
+from foldfarm.store.models import TASK_ID_SPAN, Audit, Run, RunTally, Task
+from foldfarm.store.rules import OPEN_STATES, TASK_STATES
+from foldfarm.store.tallies import join_sum as _join_sum
+from foldfarm.store.tallies import read as _read_tallies
+from foldfarm.store.tallies import split_sum as _split_sum
 
 
 @dataclass(frozen=True)
@@ -84,59 +83,37 @@ class BranchTotal:
     counted: int
 
 
-def _state_rows(conn: Connection, *where):
-    stmt = select(Task.run_id, Task.state, func.count(Task.id), *_split_sum(Task.count))
-    return conn.execute(stmt.where(*where).group_by(Task.run_id, Task.state)).all()
-
-
 def list_runs(conn: Connection) -> list[RunSummary]:
-    """Every run, oldest first, with task numbers per state and foldings counted so far."""
-    per_run: dict[int, dict[str, int]] = {}
-    counted: dict[int, int] = {}
-    for run_id, state, n, high, low in _state_rows(conn):
-        per_run.setdefault(run_id, {})[state] = n
-        if state in COUNTED_STATES:
-            counted[run_id] = counted.get(run_id, 0) + _join_sum(high, low)
+    """Every run, oldest first, with task numbers per state and foldings counted so far (its tallies row)."""
+    stmt = (
+        select(Run.id, Run.shape, Run.state, Run.total, *(getattr(RunTally, s) for s in TASK_STATES),
+               RunTally.done_count, RunTally.split_count)
+        .outerjoin(RunTally, RunTally.run_id == Run.id)
+        .order_by(Run.id)
+    )
     out = []
-    for run_id, shape, state, total in conn.execute(select(Run.id, Run.shape, Run.state, Run.total).order_by(Run.id)):
-        n = per_run.get(run_id, {})
-        per_state = {s: n.get(s, 0) for s in TASK_STATES}
-        out.append(RunSummary(run_id, shape, state, counted=counted.get(run_id, 0), total=total, **per_state))
+    for row in conn.execute(stmt):
+        if row.done_count is None:
+            _read_tallies(conn, row.id)  # says in one line that the row is missing
+        per_state = {s: getattr(row, s) for s in TASK_STATES}
+        counted = row.done_count + row.split_count
+        out.append(RunSummary(row.id, row.shape, row.state, counted=counted, total=row.total, **per_state))
     return out
 
 
 def progress(conn: Connection, run_id: int, shape: str, state: str) -> Progress:
-    """Tasks per state, exact foldings counted, nodes visited and core-seconds of one run."""
-    stmt = (
-        select(
-            Task.state,
-            func.count(Task.id),
-            *_split_sum(Task.count),
-            *_split_sum(Task.nodes),
-            func.sum(Task.seconds),
-        )
-        .where(Task.run_id == run_id)
-        .group_by(Task.state)
-    )
-    tasks = dict.fromkeys(TASK_STATES, 0)
-    counted = nodes = 0
-    seconds = 0.0
-    for task_state, n, c_high, c_low, n_high, n_low, secs in conn.execute(stmt):
-        tasks[task_state] = n
-        if task_state in COUNTED_STATES:
-            counted += _join_sum(c_high, c_low)
-        nodes += _join_sum(n_high, n_low)
-        seconds += float(secs or 0.0)
-    return Progress(run_id, shape, state, tasks, counted, nodes, seconds)
+    """Tasks per state, exact foldings counted, nodes visited and core-seconds of one run (its tallies row)."""
+    t = _read_tallies(conn, run_id)
+    return Progress(run_id, shape, state, dict(t.tasks), t.counted, t.nodes, t.seconds)
 
 
 def top_tasks(conn: Connection, run_id: int, k: int, by: Literal["seconds", "count", "nodes"]) -> list[TaskStat]:
-    """The ``k`` tasks of a run with the largest ``by`` (ties: lower id first)."""
+    """The ``k`` tasks of a run with the largest ``by`` (ties: lower id first); ``nodes`` has no index."""
     column = {"seconds": Task.seconds, "count": Task.count, "nodes": Task.nodes}[by]
     stmt = (
         select(Task.id, Task.prefix, Task.state, Task.count, Task.nodes, Task.seconds, Task.worker)
         .where(Task.run_id == run_id, column.is_not(None))
-        .order_by(column.desc(), Task.id)
+        .order_by(column.desc(), Task.id)  # the order of the partial index, which holds no NULL
         .limit(k)
     )
     return [TaskStat(*row) for row in conn.execute(stmt)]
@@ -221,38 +198,71 @@ TASK_ORDERS = ("id", "time", "count", "finished")
 _RECORD_COLUMNS = [getattr(Task, name) for name in TaskRecord.__dataclass_fields__]
 
 
-def task_records(run_id: int):
+def run_ids(run_id: int, legacy_ids: int = 0):
+    """The run's tasks as a condition that lets a listing in id order walk the primary key.
+
+    Every id of the run's own range belongs to the run, so in a store made
+    as version 2 the range alone picks its tasks (said beside ``run_id =``,
+    the planners preferred another index and sorted the run).  Tasks from
+    before version 2 (ids up to ``legacy_ids``) need the run id too.
+    """
+    own = Task.id.between(run_id * TASK_ID_SPAN + 1, (run_id + 1) * TASK_ID_SPAN - 1)
+    return (Task.run_id == run_id) & or_(Task.id <= legacy_ids, own) if legacy_ids else own
+
+
+def task_records(run_id: int, legacy_ids: int = 0):
     """SELECT of every column of a run's tasks, in id order (stream it)."""
-    return select(*_RECORD_COLUMNS).where(Task.run_id == run_id).order_by(Task.id)
+    return select(*_RECORD_COLUMNS).where(run_ids(run_id, legacy_ids)).order_by(Task.id)
 
 
 def check_rows(run_id: int):
-    """SELECT of :class:`CheckRow` columns of a run's tasks, in id order (stream it)."""
+    """SELECT of :class:`CheckRow` columns of a run's tasks, in tree order (``sort_key``; stream it)."""
     columns = [getattr(Task, name) for name in CheckRow.__dataclass_fields__]
-    return select(*columns).where(Task.run_id == run_id).order_by(Task.id)
+    return select(*columns).where(Task.run_id == run_id).order_by(Task.sort_key)
+
+
+#: Column of each listing order but ``id``; its index ``ix_tasks_run_<name>`` holds the rows that have one.
+_SORTED = {"time": Task.seconds, "count": Task.count, "finished": Task.finished_at}
 
 
 def task_listing(
-    conn: Connection, run_id: int, states: tuple[str, ...] = (), order: str = "id", limit: int | None = None
+    conn: Connection,
+    run_id: int,
+    states: tuple[str, ...] = (),
+    order: str = "id",
+    limit: int | None = None,
+    legacy_ids: int = 0,
 ) -> list[TaskRecord]:
     """A run's tasks in ``states`` (all when empty), sorted by ``order``, at most ``limit`` of them.
 
     ``time``, ``count`` and ``finished`` put the largest (latest) first and
-    tasks without the value last; ties go to the lower id.
+    tasks without the value last; ties go to the lower id.  The tasks with a
+    value come from the top of the column's index, then, if the limit is not
+    reached, those without one in id order: two queries that each read
+    about ``limit`` rows, where one ``ORDER BY ... NULLS LAST`` would sort
+    the whole run.
     """
-    keys = {
-        "id": [Task.id],
-        "time": [Task.seconds.desc().nulls_last(), Task.id],
-        "count": [Task.count.desc().nulls_last(), Task.id],
-        "finished": [Task.finished_at.desc().nulls_last(), Task.id],
-    }[order]
-    stmt = select(*_RECORD_COLUMNS).where(Task.run_id == run_id)
+    where = [Task.run_id == run_id]
     if states:
-        stmt = stmt.where(Task.state.in_(states))
-    stmt = stmt.order_by(*keys)
-    if limit is not None:
-        stmt = stmt.limit(limit)
-    return [TaskRecord(*row) for row in conn.execute(stmt)]
+        where.append(Task.state.in_(states))
+    if order == "id":
+        # With states: the (run_id, state, id) index; without: the primary key over the run's range.
+        stmt = select(*_RECORD_COLUMNS).where(*(where if states else [run_ids(run_id, legacy_ids)]))
+        return [TaskRecord(*row) for row in conn.execute(stmt.order_by(Task.id).limit(limit))]
+    column = _SORTED[order]
+    stmt = select(*_RECORD_COLUMNS).where(*where, column.is_not(None)).order_by(column.desc(), Task.id)
+    out = [TaskRecord(*row) for row in conn.execute(stmt.limit(limit))]
+    if limit is not None and len(out) == limit:
+        return out
+    # Done and split tasks always have all three values, so the rest are open tasks: per state from
+    # the (run_id, state, id) index, merged by id.
+    rest = limit if limit is None else limit - len(out)
+    lists = []
+    for state in OPEN_STATES:
+        if not states or state in states:
+            part = select(*_RECORD_COLUMNS).where(Task.run_id == run_id, Task.state == state, column.is_(None))
+            lists.append([TaskRecord(*row) for row in conn.execute(part.order_by(Task.id).limit(rest))])
+    return out + list(heapq.merge(*lists, key=lambda t: t.id))[:rest]
 
 
 def audit_records(conn: Connection, run_id: int) -> list[AuditRecord]:
@@ -272,12 +282,48 @@ def runs_of_shape(conn: Connection, shape: str) -> list[tuple[int, str]]:
     return [tuple(row) for row in conn.execute(select(Run.id, Run.state).where(Run.shape == shape).order_by(Run.id))]
 
 
-def id_gaps(conn: Connection, first: int, last: int) -> list[IdGap]:
-    """Ranges of ids in ``first..last`` that no task has (any run).
+def id_gaps(conn: Connection, first: int, last: int, legacy_ids: int = 0) -> list[IdGap]:
+    """Ranges of ids in ``first..last`` that were handed out but no task has (any run).
 
-    Ids are handed out consecutively and never freed, so a gap is a deleted
-    task.  One COUNT answers the usual case (no gap); only then are the ids
-    of the range read.
+    Ids handed out: ``1 .. legacy_ids`` (version 1 took them from one
+    counter for all runs) and each run's own numbers ``1 .. tasks_numbered``
+    (see :data:`TASK_ID_SPAN`).  Ids are never freed, so a gap is a deleted
+    task; the runs on either side of a gap in a run's own range are that run.
+    """
+    gaps = _holes(conn, max(first, 1), min(last, legacy_ids)) if legacy_ids else []
+    spans = (
+        select(RunTally.run_id, RunTally.tasks_numbered)
+        .where(RunTally.run_id.between(first // TASK_ID_SPAN, last // TASK_ID_SPAN))
+        .order_by(RunTally.run_id)
+    )
+    for run_id, numbered in conn.execute(spans).all():
+        base = run_id * TASK_ID_SPAN
+        for gap in _holes(conn, max(first, base + 1), min(last, base + numbered)):
+            gaps.append(IdGap(gap.first, gap.last, run_id, run_id))
+    return gaps
+
+
+def run_id_gaps(conn: Connection, run_id: int, legacy_ids: int = 0) -> list[IdGap]:
+    """Ranges of the ids handed out to run ``run_id`` that no task has: its own range up to its last
+    number, and the holes between its tasks from before version 2 (ids ``1 .. legacy_ids``)."""
+    gaps = []
+    if legacy_ids:
+        low, high = conn.execute(
+            select(func.min(Task.id), func.max(Task.id)).where(Task.run_id == run_id, Task.id <= legacy_ids)
+        ).one()
+        if low is not None:
+            gaps = [g for g in _holes(conn, low, high) if run_id in (g.run_before, g.run_after)]
+    numbered = _read_tallies(conn, run_id).tasks_numbered
+    base = run_id * TASK_ID_SPAN
+    gaps += [IdGap(g.first, g.last, run_id, run_id) for g in _holes(conn, base + 1, base + numbered)]
+    return gaps
+
+
+def _holes(conn: Connection, first: int, last: int) -> list[IdGap]:
+    """Ranges of ids in ``first..last`` that no task has, with the runs of the tasks on either side.
+
+    One COUNT answers the usual case (no hole); only then are the ids of the
+    range read.
     """
     if last < first:
         return []

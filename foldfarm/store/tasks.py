@@ -13,6 +13,7 @@ from typing import Any, NamedTuple
 
 from sqlalchemy import bindparam, or_, select, update
 
+from foldfarm.store import tallies
 from foldfarm.store.base import INSERT_CHUNK, StoreBase, chunks, worker_address
 from foldfarm.store.errors import ResultConflict, StoreError
 from foldfarm.store.models import Task
@@ -113,14 +114,27 @@ class TaskStore(StoreBase):
         worker = worker_address(worker)
         now = utc(now)
         changed = 0
+        deltas: dict[int, tallies.Delta] = {}
         with self._write("marking tasks running") as conn:
             for chunk in chunks(task_ids, _ID_CHUNK):
+                # Read (and lock) the rows first: the tallies need the states they leave.
+                rows = conn.execute(
+                    select(Task.id, Task.run_id, Task.state)
+                    .where(Task.id.in_(chunk), Task.state.in_(OPEN_STATES))
+                    .order_by(Task.id)
+                    .with_for_update()
+                ).all()
+                if not rows:
+                    continue
                 stmt = (
                     update(Task)
-                    .where(Task.id.in_(chunk), Task.state.in_(OPEN_STATES))
+                    .where(Task.id.in_([row.id for row in rows]))
                     .values(state="running", attempts=Task.attempts + 1, started_at=now, worker=worker)
                 )
                 changed += conn.execute(stmt).rowcount
+                for row in rows:
+                    deltas.setdefault(row.run_id, tallies.Delta()).move(row.state, "running")
+            tallies.apply_all(conn, deltas)
         return changed
 
     def reset_running(self, run_id: int, *, failed: bool = False) -> int:
@@ -130,10 +144,17 @@ class TaskStore(StoreBase):
         tasks that failed last time (the cause may be gone).
         """
         states = ("running", "failed") if failed else ("running",)
+        delta = tallies.Delta()
+        changed = 0
         with self._write("resetting running tasks") as conn:
             self._run(conn, run_id)
-            stmt = update(Task).where(Task.run_id == run_id, Task.state.in_(states)).values(state="pending")
-            return conn.execute(stmt).rowcount
+            for state in states:  # one state at a time: the tallies need each one's number
+                stmt = update(Task).where(Task.run_id == run_id, Task.state == state).values(state="pending")
+                n = conn.execute(stmt).rowcount
+                delta.move(state, "pending", n)
+                changed += n
+            tallies.apply(conn, run_id, delta)
+        return changed
 
     def mark_failed(self, task_id: int, error: str, *, now: datetime | None = None) -> bool:
         """Mark an open task ``failed`` with a message; False (no change) if it is done or split."""
@@ -144,6 +165,9 @@ class TaskStore(StoreBase):
                 return False
             stmt = update(Task).where(Task.id == task_id).values(state="failed", error=message, finished_at=utc(now))
             conn.execute(stmt)
+            delta = tallies.Delta()
+            delta.move(task.state, "failed")
+            tallies.apply(conn, task.run_id, delta)
             return True
 
     def record_done(
@@ -191,7 +215,7 @@ class TaskStore(StoreBase):
         ids = sorted({r.task_id for r in batch})
         # Locks taken in id order, so two overlapping batches cannot deadlock on PostgreSQL.
         stmt = (
-            select(Task.id, Task.prefix, Task.state, Task.count)
+            select(Task.id, Task.run_id, Task.prefix, Task.state, Task.count)
             .where(Task.id.in_(ids))
             .order_by(Task.id)
             .with_for_update()
@@ -199,6 +223,7 @@ class TaskStore(StoreBase):
         updates: list[dict[str, Any]] = []
         new = same = 0
         conflicts = []
+        deltas: dict[int, tallies.Delta] = {}
         with self._write("recording results") as conn:
             current = {row.id: row for row in conn.execute(stmt)}
             seen: dict[int, int] = {}  # results earlier in this batch
@@ -214,6 +239,9 @@ class TaskStore(StoreBase):
                 verdict = judge_done(state, stored, count)
                 if verdict is Verdict.WRITE:
                     seen[r.task_id] = count
+                    delta = deltas.setdefault(row.run_id, tallies.Delta())
+                    delta.move(state, "done")
+                    delta.add_result("done", count, int(r.nodes), float(r.seconds))
                     updates.append(
                         {
                             "b_id": r.task_id,
@@ -230,6 +258,7 @@ class TaskStore(StoreBase):
                     conflicts.append(ResultConflict(r.task_id, row.prefix, _describe(state, stored), f"count {count}"))
             if updates:
                 conn.execute(_DONE_UPDATE.values(finished_at=now), updates)
+                tallies.apply_all(conn, deltas)
         report.new += new
         report.same += same
         report.conflicts.extend(conflicts)
@@ -279,7 +308,10 @@ class TaskStore(StoreBase):
                 .where(Task.id == task_id)
                 .values(state="split", count=partial, nodes=nodes, seconds=seconds, worker=worker, finished_at=now)
             )
-            self._insert_tasks(conn, task.run_id, children, task_id, task.prefix, now)
+            delta = tallies.Delta()
+            delta.move(task.state, "split")
+            delta.add_result("split", partial, nodes, seconds)
+            self._insert_tasks(conn, task.run_id, children, task_id, task.prefix, now, delta=delta)
         return Recorded.NEW
 
     def done_tasks(self, run_id: int) -> Iterator[tuple[str, int]]:
