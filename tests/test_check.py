@@ -6,6 +6,7 @@ published table (OEIS, named beside each value); nothing is hand-typed.
 
 from __future__ import annotations
 
+import dataclasses
 import itertools
 import math
 import subprocess
@@ -62,19 +63,39 @@ def test_every_published_count_is_divisible_by_the_symmetry_factor():
                 assert row.count % factor == 0, f"{row.shape} ({row.source}) tree {tree}: factor {factor}"
 
 
+def rows_of(tasks) -> list[CheckRow]:
+    """Check rows, in tree order, of ``(steps, state, count, parent index or None)`` (ids are 1 + the index)."""
+    rows = [CheckRow(i + 1, prefix_text(s), state, count, None if p is None else p + 1, HERE)
+            for i, (s, state, count, p) in enumerate(tasks)]
+    return sorted(rows, key=lambda r: parse_prefix(r.prefix))
+
+
+def problems(tasks, tables, kind: str) -> list[str]:
+    """Every completeness problem of ``kind`` a pass over ``tasks`` (see :func:`rows_of`) finds."""
+    scan = check.scan_tasks(rows_of(tasks), 1, kids_of(tables), tables.n, keep=None)
+    return scan.problems.kept[kind]
+
+
+def cover_problems(tops, tables) -> list[str]:
+    return problems([(t, "done", 0, None) for t in tops], tables, "cover")
+
+
+def split_problems(prefix, children, tables) -> list[str]:
+    return problems([(prefix, "split", 0, None)] + [(c, "done", 0, 0) for c in children], tables, "splits")
+
+
 def test_plan_covers_the_tree_and_damage_is_named():
     tables = prepare("4x4")
-    kids = kids_of(tables)
     tasks = list(plan(tables, 40))
-    assert check.cover_problems(tasks, kids, tables.n) == []
+    assert cover_problems(tasks, tables) == []
     missing = tasks[len(tasks) // 2]
-    problems = check.cover_problems([t for t in tasks if t != missing], kids, tables.n)
-    assert problems and prefix_text(missing) in " ".join(problems)
+    found = cover_problems([t for t in tasks if t != missing], tables)
+    assert found and prefix_text(missing) in " ".join(found)
     inside = missing + (expand(tables, missing)[0][0],) if len(missing) + 2 < tables.n else missing[:-1]
-    assert "overlap" in check.cover_problems(tasks + [inside], kids, tables.n)[0]
-    assert check.cover_problems([], kids, tables.n) == ["no task covers the tree"]
+    assert "overlap" in cover_problems(tasks + [inside], tables)[0]
+    assert cover_problems([], tables) == ["no task covers the tree"]
     bogus = tasks[0][:-1] + (99,)
-    assert any("not a node" in p for p in check.cover_problems(tasks + [bogus], kids, tables.n))
+    assert any("not a node" in p for p in cover_problems(tasks + [bogus], tables))
 
 
 @settings(max_examples=60, deadline=None)
@@ -91,28 +112,48 @@ def test_a_real_remainder_passes_and_any_child_but_the_stopping_node_is_missed(s
             break
         prefix += (children[pick % len(children)],)
     out = count_below(tables, prefix, budget=budget)
-    kids = kids_of(tables)
     if out.complete:
         return
-    assert check.split_problems([(prefix, out.remainder)], kids, tables.n) == []
+    assert split_problems(prefix, out.remainder, tables) == []
     if len(out.remainder) > 1:
         lost = out.remainder[1 + pick % (len(out.remainder) - 1)]
         rest = [r for r in out.remainder if r != lost]
-        problems = check.split_problems([(prefix, rest)], kids, tables.n)
-        assert problems and prefix_text(lost) in problems[0]
-    extra = check.split_problems([(prefix, out.remainder + [prefix])], kids, tables.n)
-    assert extra and "not inside" in extra[0]
+        found = split_problems(prefix, rest, tables)
+        assert found and prefix_text(lost) in found[0]
+    deepest = max(len(r) for r in out.remainder)
+    last = [r for r in out.remainder if len(r) == deepest]
+    stop = max(last, key=lambda r: expand(tables, r[:-1])[0].index(r[-1]))
+    # Siblings the search finished, above the deepest level (a finished sibling of the stopping node looks like
+    # a search that stopped there instead: the total and the certificate see that, not the structure).
+    done = [stop[:j] + (k,) for j in range(len(prefix), len(stop) - 1)
+            for k in expand(tables, stop[:j])[0][expand(tables, stop[:j])[0].index(stop[j]) + 1:]]
+    if done:
+        found = split_problems(prefix, out.remainder + done[pick % len(done):][:1], tables)
+        assert found and "outside its remainder" in found[0]
+    twice = problems([(prefix, "split", 0, None), (prefix, "done", 0, 0)] + [(c, "done", 0, 0) for c in out.remainder],
+                     tables, "parents")
+    assert twice and "name task 1 as parent, which is not the split task they lie in" in twice[0]
 
 
 def test_nodes_outside_the_tree_are_reported_not_expanded():
     tables = prepare("3x4")
     kids = kids_of(tables)
     assert kids([(1, 3), (9,), (1, 2, 1, 1, 1, 1, 1, 1, 1, 1)]) == [None, None, None]  # illegal, illegal, too deep
-    problems = check.split_problems([((1, 3), [(1, 3, 1)])], kids, tables.n)
-    assert problems == ["split task /1/3: /1/3 is not a node of the tree with nodes below it"]
+    assert split_problems((1, 3), [(1, 3, 1)], tables) == \
+        ["split task /1/3: /1/3 is not a node of the tree with nodes below it"]
     legal = (1, 2, expand(tables, (1, 2))[0][0])
-    problems = check.split_problems([((1, 2), [legal[:2] + (12,)])], kids, tables.n)
-    assert problems == ["a deepest remainder task of split task /1/2 is not a node of the tree"]
+    assert split_problems((1, 2), [legal[:2] + (12,)], tables) == \
+        ["a deepest remainder task of split task /1/2 is not a node of the tree"]
+
+
+def test_the_memo_of_the_trees_children_stays_bounded_and_answers_alike(monkeypatch):
+    tables = prepare("3x4")
+    nodes = [(1, 2) + tail for tail in itertools.product(range(1, 5), repeat=3)] + [(1,), (1, 2)]
+    everything = kids_of(tables)(nodes)
+    monkeypatch.setattr(check.TreeChildren, "KEEP", 5)
+    small = kids_of(tables)
+    assert [small([n])[0] for n in nodes] == everything and small(nodes) == everything
+    assert len(small.memo) == 5
 
 
 def test_certificate_depends_on_every_pair_and_nothing_else():
@@ -128,14 +169,40 @@ def test_certificate_depends_on_every_pair_and_nothing_else():
 def test_scan_sums_exactly_and_flags_counts_off_the_factor():
     big = 2**62  # far above 2**53: sums must stay exact
     rows = [CheckRow(1, "/1", "done", big, None, HERE), CheckRow(2, "/2", "split", 24, None, HERE),
-            CheckRow(3, "/2/1", "done", big + 24, 2, HERE), CheckRow(4, "/3", "pending", None, None, None),
-            CheckRow(5, "/9//", "done", 24, None, HERE)]
-    scan = check.scan_tasks(rows, 24, [0, 1])
+            CheckRow(5, "/9//", "done", 24, None, HERE), CheckRow(3, "/2/1", "done", big + 24, 2, HERE),
+            CheckRow(4, "/3", "pending", None, None, None)]
+    scan = check.scan_tasks(rows, 24, kids_of(prepare("3x4")), 12, [0, 1])
     assert scan.total == 2 * big + 48
     assert scan.states == {"done": 3, "split": 1, "pending": 1}
+    assert (scan.first_id, scan.last_id) == (1, 5)
     assert [r.id for r in scan.sample] == [1, 3]
     assert scan.not_multiple == [("/1", big), ("/2/1", big + 24)]  # 2**62 is not a multiple of 24
-    assert scan.malformed and "/9//" in scan.malformed[0]
+    assert scan.malformed == 1 and "/9//" in scan.problems.kept["malformed"][0]
+
+
+def test_rows_out_of_tree_order_or_off_their_sort_key_are_reported():
+    """A store orders the rows by a sort key written with each task; a prefix changed afterwards shows."""
+    kids = kids_of(prepare("3x4"))
+    rows = [CheckRow(1, "/1", "done", 0, None, HERE), CheckRow(3, "/2", "done", 0, None, HERE),
+            CheckRow(2, "/1/2", "done", 0, None, HERE)]
+    scan = check.scan_tasks(rows, 1, kids, 12)
+    assert scan.problems.kept["order"] == ["task 2 (/1/2) comes after /2, out of tree order"]
+
+    @dataclasses.dataclass
+    class KeyedRow:
+        id: int
+        prefix: str
+        state: str
+        count: int
+        parent_id: int | None
+        worker: str
+        sort_key: str
+
+    keyed = [KeyedRow(1, "/1", "done", 0, None, HERE, "00001"), KeyedRow(2, "/3", "done", 0, None, HERE, "00002")]
+    scan = check.scan_tasks(keyed, 1, kids, 12)
+    assert scan.problems.kept["order"] == ["task 2 (/3) does not match its sort key: its prefix changed after it "
+                                           "was stored"]
+    assert scan.total == 0 and check.completeness_check(scan)["ok"] is False
 
 
 def test_published_check_names_its_source():
@@ -359,9 +426,10 @@ def test_store_task_queries(counted):
         store.tasks(999)
     streamed = list(store.iter_tasks(run_id))
     assert streamed == everything
-    rows = list(store.check_rows(run_id))
+    rows = list(store.check_rows(run_id))  # in tree order
+    in_order = sorted(everything, key=lambda t: parse_prefix(t.prefix))
     assert [(r.id, r.prefix, r.state, r.count, r.parent_id) for r in rows] == \
-        [(t.id, t.prefix, t.state, t.count, t.parent_id) for t in everything]
+        [(t.id, t.prefix, t.state, t.count, t.parent_id) for t in in_order]
     assert sum(r.count for r in rows if r.state in ("done", "split")) == SHAPE_COUNT  # OEIS A001416
     assert store.runs_of_shape(SHAPE) == [(run_id, "verified")] and store.runs_of_shape("5x5") == []
     assert store.audits(run_id) == []
@@ -560,8 +628,9 @@ def test_a_run_made_before_tree_two_resumes_on_its_own_tree(client, new_store_ur
         old_factor = 2 * 12  # tree 1 of 3x4: 12 rotations x 2 (turning the stack over)
         assert checks["divisibility"]["factor"] == old_factor == check.symmetry_factor((3, 4), LEGACY_TREE)
         assert "tree 1" in checks["divisibility"]["detail"]
-        scan = check.scan_tasks(store.check_rows(run_id), old_factor)
-        assert info.certificate == check.certificate("3x4", scan.entries)  # the digest text of before tree 2
+        entries = [(parse_prefix(r.prefix), r.state, r.count) for r in store.check_rows(run_id)
+                   if r.state in ("done", "split")]
+        assert info.certificate == check.certificate("3x4", entries)  # the digest text of before tree 2
 
 
 def test_a_run_on_a_tree_this_version_does_not_know_is_refused_in_one_line(tmp_path):

@@ -15,6 +15,7 @@ from typing import Any
 from sqlalchemy import case, func, insert, select, update
 from sqlalchemy.exc import IntegrityError, SQLAlchemyError
 
+from foldfarm.prefix import PrefixError, parse_prefix, sort_key
 from foldfarm.store import leases, queries
 from foldfarm.store.base import short_text, worker_address
 from foldfarm.store.errors import StoreError
@@ -299,9 +300,10 @@ class Store(TaskStore):
         return (queries.TaskRecord(*row) for row in self._stream(queries.task_records(run_id)))
 
     def check_rows(self, run_id: int) -> Iterator[queries.CheckRow]:
-        """Stream ``(id, prefix, state, count, parent_id, worker)`` of a run's tasks in id order."""
+        """Stream ``(id, prefix, state, count, parent_id, worker)`` of a run's tasks in tree order: tuple order
+        of the prefixes (:func:`foldfarm.prefix.sort_key`), what :mod:`foldfarm.check` reads."""
         self.get_run(run_id)
-        return (queries.CheckRow(*row) for row in self._stream(queries.check_rows(run_id)))
+        return _in_tree_order_temporary(queries.CheckRow(*row) for row in self._stream(queries.check_rows(run_id)))
 
     def audits(self, run_id: int) -> list[queries.AuditRecord]:
         """Every audit of a run's tasks, oldest first, beside the recorded counts."""
@@ -318,3 +320,20 @@ class Store(TaskStore):
         """Ranges of task ids in ``first..last`` held by no task of any run (deleted tasks)."""
         with self._read("looking for deleted tasks") as conn:
             return queries.id_gaps(conn, first, last)
+
+
+def _in_tree_order_temporary(rows: Iterator[queries.CheckRow]) -> Iterator[queries.CheckRow]:
+    """TEMPORARY (issue 13): rows read in id order, sorted here by :func:`foldfarm.prefix.sort_key`.
+
+    Holds every row of the run (O(tasks) memory); to be replaced by the
+    indexed ``ORDER BY sort_key`` of store schema v2, which streams.  Rows
+    whose prefix does not parse (tampering) come first, in id order: the
+    checks report them wherever they come.
+    """
+    def key(row: queries.CheckRow) -> tuple[int, str]:
+        try:
+            return 1, sort_key(parse_prefix(row.prefix))
+        except PrefixError:
+            return 0, ""
+
+    return iter(sorted(rows, key=key))
