@@ -622,6 +622,17 @@ def completeness_check(scan: Scan, gaps: Iterable[tuple[int, int]] = ()) -> dict
     ``scan`` has read every row; ``gaps`` are ranges of task ids next to
     this run's tasks that no task has.
     """
+    problems = completeness_problems(scan, gaps)
+    tasks = sum(scan.states.values())
+    if problems:
+        return outcome(False, problems.detail(), problems=len(problems))
+    return outcome(True, f"all {tasks} task(s) closed ({scan.states['done']} done, {scan.states['split']} split); "
+                         f"the {scan.planned} planned task(s) cover the tree; every split has its whole remainder; "
+                         "no done tasks overlap; no task id is missing")
+
+
+def completeness_problems(scan: Scan, gaps: Iterable[tuple[int, int]] = ()) -> Problems:
+    """The scan's problems with the open tasks and the missing ids (the more malformed prefixes summed up)."""
     problems = copy.deepcopy(scan.problems)
     if scan.malformed > SHOWN:
         problems.replace("malformed", problems.kept["malformed"][:SHOWN] +
@@ -632,12 +643,7 @@ def completeness_check(scan: Scan, gaps: Iterable[tuple[int, int]] = ()) -> dict
     for a, b in gaps:
         problems.add("gaps", f"task ids {a}..{b} are missing from the store (ids are never freed: deleted?)"
                      if a != b else f"task id {a} is missing from the store (ids are never freed: deleted?)")
-    tasks = sum(scan.states.values())
-    if problems:
-        return outcome(False, problems.detail(), problems=len(problems))
-    return outcome(True, f"all {tasks} task(s) closed ({scan.states['done']} done, {scan.states['split']} split); "
-                         f"the {scan.planned} planned task(s) cover the tree; every split has its whole remainder; "
-                         "no done tasks overlap; no task id is missing")
+    return problems
 
 
 class TreeChildren:

@@ -2,7 +2,8 @@
 
 :mod:`foldfarm.check` now reads a run's tasks once in tree order with
 O(depth) state; the functions here are the previous implementation,
-unchanged except for imports: they hold every task in memory and read the
+unchanged except for imports and :func:`completeness_problems` split out of
+:func:`completeness_check`: they hold every task in memory and read the
 rows in id order.  ``tests/test_check.py`` compares the two on random plans,
 splits and tamperings.  Not used by foldfarm itself.
 """
@@ -247,6 +248,17 @@ def completeness_check(scan: Scan, kids: Kids, cells: int, gaps: list[tuple[int,
 
     ``gaps`` are ranges of task ids next to this run's tasks that no task has.
     """
+    problems = completeness_problems(scan, kids, cells, gaps)
+    tasks = sum(scan.states.values())
+    if problems:
+        return outcome(False, _listed(problems), problems=len(problems))
+    return outcome(True, f"all {tasks} task(s) closed ({scan.states['done']} done, {scan.states['split']} split); "
+                         f"the {len(scan.tops)} planned task(s) cover the tree; every split has its whole remainder; "
+                         "no done tasks overlap; no task id is missing")
+
+
+def completeness_problems(scan: Scan, kids: Kids, cells: int, gaps: list[tuple[int, int]] = ()) -> list[str]:
+    """Every problem :func:`completeness_check` lists (split out of it for the comparison)."""
     problems = list(scan.malformed)
     problems += [f"{scan.malformed_more} more malformed prefix(es)"] if scan.malformed_more else []
     open_tasks = {s: scan.states[s] for s in ("pending", "running", "failed") if scan.states[s]}
@@ -262,9 +274,4 @@ def completeness_check(scan: Scan, kids: Kids, cells: int, gaps: list[tuple[int,
     clash = first_overlap(s for s, state, _ in scan.entries if state == "done")
     if clash is not None:
         problems.append("done tasks {} and {} overlap".format(*map(prefix_text, clash)))
-    tasks = sum(scan.states.values())
-    if problems:
-        return outcome(False, _listed(problems), problems=len(problems))
-    return outcome(True, f"all {tasks} task(s) closed ({scan.states['done']} done, {scan.states['split']} split); "
-                         f"the {len(scan.tops)} planned task(s) cover the tree; every split has its whole remainder; "
-                         "no done tasks overlap; no task id is missing")
+    return problems

@@ -15,6 +15,7 @@ import sys
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
+import reference_check as reference
 from local_driver import HERE, count_here, count_pending
 from sqlalchemy import delete, select, update
 
@@ -203,6 +204,107 @@ def test_rows_out_of_tree_order_or_off_their_sort_key_are_reported():
     assert scan.problems.kept["order"] == ["task 2 (/3) does not match its sort key: its prefix changed after it "
                                            "was stored"]
     assert scan.total == 0 and check.completeness_check(scan)["ok"] is False
+
+
+def simulated_run(tables, tasks: int, budget: int, most: int = 300) -> list[CheckRow]:
+    """The rows of a run counted in id order as a store holds them: planned tasks, then remainders (ids
+    consecutive); a task is counted whole once ``most`` tasks exist."""
+    rows: list[CheckRow] = []
+    queue = [(steps, None) for steps in plan(tables, tasks)]
+    while len(rows) < len(queue):
+        steps, parent = queue[len(rows)]
+        out = count_below(tables, steps, budget=budget if len(queue) < most else None)
+        row_id = len(rows) + 1
+        rows.append(CheckRow(row_id, prefix_text(steps), "done" if out.complete else "split", out.count, parent, HERE))
+        queue += [(r, row_id) for r in ([] if out.complete else out.remainder)]
+    return rows
+
+
+def tampered(rows: list[CheckRow], damage: str, pick: int, factor: int) -> list[CheckRow]:
+    """``rows`` with one change a careless or dishonest hand might make (the store keeps prefixes unique in a run)."""
+    rows = list(rows)
+    i = pick % len(rows)
+    row = rows[i]
+    steps = parse_prefix(row.prefix)
+    taken = {r.prefix for r in rows}
+    above = [steps[:j] for j in range(len(steps)) if prefix_text(steps[:j]) not in taken]
+    if damage == "count":
+        rows[i] = dataclasses.replace(row, count=row.count + (1 if pick % 2 else factor))
+    elif damage == "delete":
+        del rows[i]
+    elif damage == "pending":
+        rows[i] = dataclasses.replace(row, state="pending", count=None)
+    elif damage == "overlap" and above:
+        rows.append(CheckRow(len(rows) + 1, prefix_text(above[-1]), "done", factor, row.parent_id, HERE))
+    elif damage == "parent":
+        other = rows[(pick // len(rows)) % len(rows)].id
+        rows[i] = dataclasses.replace(row, parent_id=None if row.parent_id is not None and pick % 3 == 0 else other)
+    elif damage == "prefix":
+        text = {0: prefix_text(steps + (99,)), 1: prefix_text(above[-1]) if above else "", 2: row.prefix + "//"}[pick % 3]
+        rows[i] = dataclasses.replace(row, prefix=text if text and text not in taken else row.prefix + "//")
+    return rows
+
+
+def well_formed(prefix: str) -> bool:
+    try:
+        parse_prefix(prefix)
+    except PrefixError:
+        return False
+    return True
+
+
+def tree_order(rows: list[CheckRow]) -> list[CheckRow]:
+    """Rows as the store streams them to the checks: malformed prefixes first, then tuple order of prefixes."""
+    return sorted(rows, key=lambda r: (1, parse_prefix(r.prefix)) if well_formed(r.prefix) else (0, ()))
+
+
+@settings(max_examples=150, deadline=None)
+@given(shape=st.sampled_from(["3x4", "2x2x3", "2x5", "1x8", "3x3", "2x2x2", "4x4"]), tasks=st.integers(1, 40),
+       budget=st.integers(3, 80), damage=st.sampled_from(["none", "count", "delete", "pending", "overlap", "parent",
+                                                          "prefix"]),
+       pick=st.integers(0, 10**6), fraction=st.sampled_from([0.0, 0.1, 1.0]))
+def test_the_streamed_checks_agree_with_the_previous_implementation(shape, tasks, budget, damage, pick, fraction):
+    """Same totals, verdicts, certificate and (but where parents were changed) the same completeness problems as
+    the list-based implementation before streaming (tests/reference_check.py)."""
+    tables = prepare(shape)
+    factor = check.symmetry_factor(tables.sides, tables.tree)
+    rows = tampered(simulated_run(tables, tasks, budget), damage, pick, factor)
+    ids = sorted(r.id for r in rows)
+    gaps = [(a + 1, b - 1) for a, b in itertools.pairwise(ids) if b > a + 1]
+    side_order = "x".join(map(str, tables.sides))
+    done = sum(1 for r in rows if r.state == "done")
+    positions = check.sample_positions(done, fraction, pick)
+
+    old = reference.scan_tasks(rows, factor, positions)
+    new = check.scan_tasks(tree_order(rows), factor, kids_of(tables), tables.n, positions,
+                           check.Certificate(side_order, tables.tree), keep=None)
+    assert (new.total, new.done_sum, new.split_sum, new.states) == (old.total, old.done_sum, old.split_sum, old.states)
+    assert (new.first_id, new.last_id) == (old.first_id, old.last_id)
+    stored = old.total if damage == "none" else old.total - factor
+    assert check.total_check(new, stored, True) == check.total_check(old, stored, True)
+    old_div, new_div = check.divisibility_check(old, tables.sides, tables.tree), \
+        check.divisibility_check(new, tables.sides, tables.tree)
+    assert new_div["ok"] == old_div["ok"]
+    assert sorted(new.not_multiple) == sorted(old.not_multiple) or old.not_multiple_more
+    assert new.digest.digest() == reference.certificate(side_order, old.entries, tables.tree)
+    in_order = [r for r in tree_order(rows) if r.state == "done" and well_formed(r.prefix)]
+    assert new.sample == [in_order[p] for p in positions if p < len(in_order)]
+
+    old_problems = reference.completeness_problems(old, kids_of(tables), tables.n, gaps)
+    old_check = reference.completeness_check(old, kids_of(tables), tables.n, gaps)
+    new_check = check.completeness_check(new, gaps)
+    assert new_check["ok"] == old_check["ok"], (old_problems, check.completeness_problems(new, gaps).messages())
+    if damage in ("none", "count"):
+        assert new_check == old_check
+    if damage in ("parent", "prefix"):  # a task under another split than its parent: other messages, same verdict
+        return
+    # Tasks that name a parent other than the split they lie in (a deleted split, a task added beside a split's
+    # remainder with the split as parent) are reported where they lie, not per parent id.
+    new_problems = check.completeness_problems(new, gaps).messages()
+    old_parents, new_parents = ([p for p in problems if " as parent, which is not " in p or "is not inside split" in p]
+                                for problems in (old_problems, new_problems))
+    assert bool(new_parents) == bool(old_parents), (old_problems, new_problems)
+    assert sorted(set(new_problems) - set(new_parents)) == sorted(set(old_problems) - set(old_parents))
 
 
 def test_published_check_names_its_source():
