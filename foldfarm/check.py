@@ -1,23 +1,37 @@
 """The aggregator: a run's exact total and the evidence that it is right.
 
-:func:`verify_run` reads a run's tasks from the store in one streamed pass,
-runs the checks below, stores their outcome with the run (state
-``verified`` when none failed, ``suspect`` otherwise) and returns them as
-a JSON-able dict: check name -> ``{"ok": True | False | None, "detail":
-text, ...}``, where ``None`` means "not applicable" or "skipped" (never
-"passed").  Every decision is a plain function of plain data, tested
-without a database or a cluster; :func:`verify_run` is the thin layer that
-feeds them.
+:func:`verify_run` reads a run's tasks from the store in one streamed pass
+in tree order (tuple order of the prefixes: every task directly before
+the tasks below it), runs the checks below, stores their outcome with the
+run (state ``verified`` when none failed, ``suspect`` otherwise) and
+returns them as a JSON-able dict: check name -> ``{"ok": True | False |
+None, "detail": text, ...}``, where ``None`` means "not applicable" or
+"skipped" (never "passed").  Every decision is a plain function of plain
+data, tested without a database or a cluster; :func:`verify_run` is the
+thin layer that feeds them.
+
+In tree order every check is local, so the pass holds O(depth) state and
+one chunk of rows, whatever the number of tasks (:class:`Scan`): sums and
+counters; a stack of the open ancestors of the last planned task, whose
+children are compared with the tree's as each is closed; a stack of the
+open split tasks, each collecting its remainder; the last planned and the
+last done task (an overlap is an ancestor directly followed by a
+descendant); the certificate hashed as the rows come.  The kernel's
+children are asked a chunk at a time (on a worker when there is a
+cluster), and their memo keeps only recent nodes (:class:`TreeChildren`).
+A row out of tree order, or whose stored sort key does not match its
+prefix, was changed after it was stored and fails the completeness check.
 
 ``total``
     Σ count of done tasks + Σ partial count of split tasks, in exact
     integers, equals the total stored when the run finished.
 ``completeness``
     No task is pending, running or failed; the tasks without a parent (the
-    plan) partition the search tree; every split task's children are
-    exactly the remainder the kernel defines for it (see
-    :func:`split_problems`); no two done tasks overlap; and no task id in
-    the run's range is missing from the store (ids are handed out
+    plan) partition the search tree; every task with a parent lies below it
+    and below no other split task nearer than it, and every split task's
+    children are exactly the remainder the kernel defines for it (see
+    :func:`_remainder_problems`); no two done tasks overlap; and no task id
+    in the run's range is missing from the store (ids are handed out
     consecutively and never freed, so a gap is a deleted task).
 ``divisibility``
     Every task count, and so the total, is a multiple of the run's own
@@ -45,7 +59,8 @@ feeds them.
     order>\\n`` (``foldfarm certificate 1 <side order> tree <tree>\\n`` for
     a run on a tree other than 1, whose prefixes name other subtrees)
     followed by one line ``<prefix> <state> <count>\\n`` per done
-    or split task, sorted by prefix as a tuple of numbers.  Done counts
+    or split task, sorted by prefix as a tuple of numbers (the order the
+    pass reads them in).  Done counts
     and split partial counts together make the total, so the digest
     certifies it.  Two stores holding the same run give the same digest,
     and so does the same plan counted again with the same node budget
