@@ -4,8 +4,9 @@ For each size N (default 10^5 and 10^6) plans N tasks of a map (default
 5x5), writes them as done tasks into a scratch SQLite file with a
 ``sort_key`` column and its index (what the store's ``ORDER BY sort_key``
 will stream), then, in a fresh process per size and implementation, reads
-them back in key order into the checks and prints peak memory (ru_maxrss
-above the process's size after its imports) and microseconds per task:
+them back in key order into the checks and prints peak memory (the
+process's high-water mark, VmHWM; and above its size after its imports)
+and microseconds per task:
 
 * ``streamed``: :func:`foldfarm.check.scan_tasks` and the completeness check;
 * ``lists`` (``--lists``): the list-based checks before streaming
@@ -24,7 +25,6 @@ from __future__ import annotations
 import argparse
 import json
 import os
-import resource
 import subprocess
 import sys
 import tempfile
@@ -62,6 +62,12 @@ def build(path: str, shape: str, size: int) -> int:
     return n
 
 
+def high_water() -> int:
+    """This process's peak resident memory in KiB (ru_maxrss would include what its parent held before exec)."""
+    with open("/proc/self/status") as status:
+        return next(int(line.split()[1]) for line in status if line.startswith("VmHWM:"))
+
+
 def measure(path: str, shape: str, how: str) -> dict:
     """In this process: stream the rows in key order through the checks; peak memory and time."""
     from foldfarm import check
@@ -75,7 +81,7 @@ def measure(path: str, shape: str, how: str) -> dict:
     columns = [ROWS.c[name] for name in CheckRow.__dataclass_fields__]
     stmt = select(*columns).order_by(ROWS.c.sort_key)
     factor = check.symmetry_factor(tables.sides, tables.tree)
-    base = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    base = high_water()
     start = time.perf_counter()
     with engine.connect() as conn:
         rows = (CheckRow(*r) for r in conn.execution_options(yield_per=10_000).execute(stmt))
@@ -91,7 +97,7 @@ def measure(path: str, shape: str, how: str) -> dict:
             ok = reference.completeness_check(scan, kids, tables.n)["ok"]
             reference.certificate(shape, scan.entries, tables.tree)
     seconds = time.perf_counter() - start
-    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    peak = high_water()
     tasks = sum(scan.states.values())
     return {"tasks": tasks, "ok": ok, "seconds": seconds, "base_mib": base / 1024, "peak_mib": peak / 1024,
             "pass_mib": (peak - base) / 1024}

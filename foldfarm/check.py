@@ -520,7 +520,8 @@ def _remainder_problems(split: _Split, answers: dict[Steps, list[int] | None]) -
     problems = []
     if missing:
         more = f" and {len(missing) - SHOWN} more" if len(missing) > SHOWN else ""
-        problems.append(f"split task {name} lacks remainder task(s) {', '.join(map(prefix_text, missing[:SHOWN]))}{more}")
+        named = ", ".join(map(prefix_text, missing[:SHOWN]))
+        problems.append(f"split task {name} lacks remainder task(s) {named}{more}")
     if extra:
         problems.append(f"split task {name} has task(s) {', '.join(map(prefix_text, extra[:SHOWN]))} outside its "
                         "remainder")

@@ -240,7 +240,8 @@ def tampered(rows: list[CheckRow], damage: str, pick: int, factor: int) -> list[
         other = rows[(pick // len(rows)) % len(rows)].id
         rows[i] = dataclasses.replace(row, parent_id=None if row.parent_id is not None and pick % 3 == 0 else other)
     elif damage == "prefix":
-        text = {0: prefix_text(steps + (99,)), 1: prefix_text(above[-1]) if above else "", 2: row.prefix + "//"}[pick % 3]
+        moved = {0: prefix_text(steps + (99,)), 1: prefix_text(above[-1]) if above else "", 2: row.prefix + "//"}
+        text = moved[pick % 3]
         rows[i] = dataclasses.replace(row, prefix=text if text and text not in taken else row.prefix + "//")
     return rows
 
