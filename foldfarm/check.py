@@ -1,23 +1,37 @@
 """The aggregator: a run's exact total and the evidence that it is right.
 
-:func:`verify_run` reads a run's tasks from the store in one streamed pass,
-runs the checks below, stores their outcome with the run (state
-``verified`` when none failed, ``suspect`` otherwise) and returns them as
-a JSON-able dict: check name -> ``{"ok": True | False | None, "detail":
-text, ...}``, where ``None`` means "not applicable" or "skipped" (never
-"passed").  Every decision is a plain function of plain data, tested
-without a database or a cluster; :func:`verify_run` is the thin layer that
-feeds them.
+:func:`verify_run` reads a run's tasks from the store in one streamed pass
+in tree order (tuple order of the prefixes: every task directly before
+the tasks below it), runs the checks below, stores their outcome with the
+run (state ``verified`` when none failed, ``suspect`` otherwise) and
+returns them as a JSON-able dict: check name -> ``{"ok": True | False |
+None, "detail": text, ...}``, where ``None`` means "not applicable" or
+"skipped" (never "passed").  Every decision is a plain function of plain
+data, tested without a database or a cluster; :func:`verify_run` is the
+thin layer that feeds them.
+
+In tree order every check is local, so the pass holds O(depth) state and
+one chunk of rows, whatever the number of tasks (:class:`Scan`): sums and
+counters; a stack of the open ancestors of the last planned task, whose
+children are compared with the tree's as each is closed; a stack of the
+open split tasks, each collecting its remainder; the last planned and the
+last done task (an overlap is an ancestor directly followed by a
+descendant); the certificate hashed as the rows come.  The kernel's
+children are asked a chunk at a time (on a worker when there is a
+cluster), and their memo keeps only recent nodes (:class:`TreeChildren`).
+A row out of tree order, or whose stored sort key does not match its
+prefix, was changed after it was stored and fails the completeness check.
 
 ``total``
     Σ count of done tasks + Σ partial count of split tasks, in exact
     integers, equals the total stored when the run finished.
 ``completeness``
     No task is pending, running or failed; the tasks without a parent (the
-    plan) partition the search tree; every split task's children are
-    exactly the remainder the kernel defines for it (see
-    :func:`split_problems`); no two done tasks overlap; and no task id in
-    the run's range is missing from the store (a run numbers its tasks
+    plan) partition the search tree; every task with a parent lies below it
+    and below no other split task nearer than it, and every split task's
+    children are exactly the remainder the kernel defines for it (see
+    :func:`_remainder_problems`); no two done tasks overlap; and no task id
+    in the run's range is missing from the store (a run numbers its tasks
     consecutively and never frees a number, so a gap is a deleted task:
     :meth:`foldfarm.store.Store.missing_task_ids`).
 ``divisibility``
@@ -46,7 +60,8 @@ feeds them.
     order>\\n`` (``foldfarm certificate 1 <side order> tree <tree>\\n`` for
     a run on a tree other than 1, whose prefixes name other subtrees)
     followed by one line ``<prefix> <state> <count>\\n`` per done
-    or split task, sorted by prefix as a tuple of numbers.  Done counts
+    or split task, sorted by prefix as a tuple of numbers (the order the
+    pass reads them in).  Done counts
     and split partial counts together make the total, so the digest
     certifies it.  Two stores holding the same run give the same digest,
     and so does the same plan counted again with the same node budget
@@ -57,16 +72,17 @@ feeds them.
 
 from __future__ import annotations
 
+import copy
 import hashlib
 import itertools
 import math
 import random
-from collections import Counter
+from collections import Counter, OrderedDict
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 
 from foldfarm.errors import UserError
-from foldfarm.prefix import PrefixError, Steps, first_overlap, parse_prefix, prefix_text
+from foldfarm.prefix import PrefixError, Steps, is_ancestor, parse_prefix, prefix_text, sort_key
 from foldfarm.symmetry import LEGACY_TREE, reduction, tree_of
 
 #: Check names, in the order they are reported.
@@ -100,90 +116,432 @@ def _listed(problems: list[str], more: int = 0) -> str:
 
 
 # --------------------------------------------------------------------------
-# One pass over the task rows
+# One pass over the task rows, in tree order
 # --------------------------------------------------------------------------
 
-@dataclass
-class Scan:
-    """What one pass over a run's tasks (in id order) gathers for the checks.
+#: Task rows read between two batches of :data:`Kids` questions: what the pass holds at once beyond O(depth).
+CHUNK = 8192
+#: Kinds of completeness problems, in the order they are reported.
+KINDS = ("malformed", "order", "open", "gaps", "cover", "parents", "splits", "overlap")
 
-    ``entries`` holds ``(steps, state, count)`` of every done and split
-    task; ``tops`` the steps of tasks without a parent; ``children`` the
-    steps of each parent id's children; ``sample`` the rows of the done
-    tasks at the requested positions (0-based, in id order).  Of the
-    tasks with a malformed prefix or a count off the factor, the first
-    :data:`SHOWN` are kept and the rest counted.
+
+class Problems:
+    """Completeness problems by kind: every one counted, the first ``keep`` of each kind kept (None: all)."""
+
+    def __init__(self, keep: int | None = SHOWN):
+        self.keep = keep
+        self.kept: dict[str, list[str]] = {kind: [] for kind in KINDS}
+        self.counts: Counter = Counter()
+
+    def add(self, kind: str, message: str) -> None:
+        self.counts[kind] += 1
+        if self.keep is None or len(self.kept[kind]) < self.keep:
+            self.kept[kind].append(message)
+
+    def replace(self, kind: str, messages: list[str]) -> None:
+        """Report ``messages`` instead of every problem of ``kind`` found so far."""
+        self.kept[kind], self.counts[kind] = [], 0
+        for message in messages:
+            self.add(kind, message)
+
+    def __len__(self) -> int:
+        return sum(self.counts.values())
+
+    def messages(self) -> list[str]:
+        """The kept messages, kind by kind."""
+        return [m for kind in KINDS for m in self.kept[kind]]
+
+    def detail(self) -> str:
+        """The first :data:`SHOWN` problems and how many more there are."""
+        shown = self.messages()
+        return _listed(shown, len(self) - len(shown))
+
+
+class Certificate:
+    """The run's digest (see the module docstring), fed entries in tuple order of their steps.
+
+    Entries with equal steps (impossible in a store, whose prefixes are
+    unique in a run) are hashed sorted among themselves, as
+    :func:`certificate` does; an entry out of order is hashed where it
+    comes (the completeness check reports it).
     """
 
-    factor: int
-    states: Counter = field(default_factory=Counter)
-    done_sum: int = 0
-    split_sum: int = 0
-    entries: list[tuple[Steps, str, int]] = field(default_factory=list)
-    tops: list[Steps] = field(default_factory=list)
-    children: dict[int, list[Steps]] = field(default_factory=dict)
-    splits: dict[int, Steps] = field(default_factory=dict)
-    malformed: list[str] = field(default_factory=list)
-    malformed_more: int = 0
-    not_multiple: list[tuple[str, int]] = field(default_factory=list)
-    not_multiple_more: int = 0
-    sample: list = field(default_factory=list)
-    first_id: int | None = None
-    last_id: int | None = None
+    def __init__(self, side_order: str, tree: int = LEGACY_TREE):
+        header = f"foldfarm certificate 1 {side_order}" + (f" tree {tree}" if tree != LEGACY_TREE else "")
+        self._hash = hashlib.sha256(f"{header}\n".encode())
+        self._same: list[tuple[Steps, str, int]] = []  # entries with the steps of the last one
+
+    def add(self, steps: Steps, state: str, count: int) -> None:
+        if self._same and self._same[0][0] != steps:
+            self._flush()
+        self._same.append((steps, state, count))
+
+    def _flush(self) -> None:
+        for steps, state, count in sorted(self._same):
+            self._hash.update(f"{prefix_text(steps)} {state} {count}\n".encode())
+        self._same = []
+
+    def digest(self) -> str:
+        """``sha256:`` and the hex digest of everything added."""
+        self._flush()
+        return "sha256:" + self._hash.hexdigest()
+
+
+def certificate(side_order: str, entries: Iterable[tuple[Steps, str, int]], tree: int = LEGACY_TREE) -> str:
+    """Digest of a run's done and split tasks on tree ``tree``, given in any order (see the module docstring).
+
+    >>> a = certificate("4x3", [((2,), "done", 24), ((1,), "split", 12)])
+    >>> a == certificate("4x3", [((1,), "split", 12), ((2,), "done", 24)]), a.startswith("sha256:")
+    (True, True)
+    >>> a == certificate("4x3", [((2,), "done", 36), ((1,), "split", 12)])
+    False
+    >>> a == certificate("4x3", [((2,), "done", 24), ((1,), "split", 12)], tree=2)
+    False
+    """
+    digest = Certificate(side_order, tree)
+    for entry in sorted(entries):
+        digest.add(*entry)
+    return digest.digest()
+
+
+def _inside(a: Steps, b: Steps) -> bool:
+    """Whether node ``b`` lies strictly below node ``a``."""
+    return len(a) < len(b) and b[:len(a)] == a
+
+
+@dataclass(eq=False)
+class _Inner:
+    """An open inner node of the plan's walk: a proper ancestor of a planned task, its subtree not read to the end.
+
+    ``inner`` and ``tops`` are the last steps of its children that are
+    inner nodes or planned tasks; ``kids`` the kernel's children; ``walked``
+    whether the walk from the root reaches it (through children the kernel
+    knows, above the depth limit).
+    """
+
+    node: Steps
+    parent: _Inner | None
+    inner: set[int] = field(default_factory=set)
+    tops: set[int] = field(default_factory=set)
+    kids: list[int] | None = None
+    walked: bool = False
+
+
+@dataclass(eq=False)
+class _Split:
+    """An open split task: its remainder tasks read so far and, once closed, the base of its walk (see
+    :func:`_remainder_problems`)."""
+
+    id: int
+    steps: Steps
+    children: list[Steps] = field(default_factory=list)
+    base: Steps | None = None
+    problem: str | None = None
+
+
+class Scan:
+    """One pass over a run's task rows in tree order: sums, divisibility, sample, certificate, completeness.
+
+    Rows (``id, prefix, state, count, parent_id, worker`` and, where the
+    store has it, ``sort_key``) come in tuple order of their prefixes
+    (:func:`foldfarm.prefix.sort_key`): every task comes directly before
+    the tasks below it.  So the checks that compare tasks with one another
+    are local, and the pass holds O(depth) state besides one chunk of
+    :data:`CHUNK` rows:
+
+    * the planned tasks (no parent) partition the tree: a stack of the
+      open inner nodes (the proper ancestors of the last planned task);
+      when one is closed, its children in the tree are compared with the
+      children that are planned tasks or inner nodes (see
+      :meth:`_close_inner`); two planned tasks overlap exactly when one is
+      an ancestor of the next;
+    * a remainder task's parent must be the nearest split task above it, so
+      a stack of the open split tasks collects each one's remainder and
+      judges it when the split is closed (:func:`_remainder_problems`);
+    * done tasks overlap exactly when one is an ancestor of the next done task.
+
+    The kernel's children (``kids``) are asked once a chunk, for the
+    inner nodes opened and the splits closed in it, in one batch.
+    ``sample`` holds the done tasks at ``sample_positions`` (0-based,
+    among the done tasks in this order); of the tasks with a count off the
+    factor the first :data:`SHOWN` are kept and the rest counted;
+    ``problems`` keeps ``keep`` messages of each kind (None: all, for tests).
+    """
+
+    def __init__(self, factor: int, kids: Kids, cells: int, sample_positions: Iterable[int] = (),
+                 digest: Certificate | None = None, keep: int | None = SHOWN):
+        self.factor, self.kids, self.cells, self.digest = factor, kids, cells, digest
+        self.states: Counter = Counter()
+        self.done_sum = self.split_sum = 0
+        self.not_multiple: list[tuple[str, int]] = []
+        self.not_multiple_more = 0
+        self.sample: list = []
+        self.first_id: int | None = None  # the smallest and largest task id
+        self.last_id: int | None = None
+        self.planned = 0
+        self.problems = Problems(keep)
+        self.malformed = 0
+        self._wanted = sorted(set(sample_positions), reverse=True)
+        self._done_seen = 0
+        self._last: Steps | None = None  # of the last row in order
+        self._last_top: Steps | None = None
+        self._top_clash: tuple[Steps, Steps] | None = None
+        self._last_done: Steps | None = None
+        self._done_clash: tuple[Steps, Steps] | None = None
+        self._inner: list[_Inner] = []
+        self._splits: list[_Split] = []
+        self._stray: list = [None, None, 0]  # misparented rows in a row: parent id, enclosing split, how many
+        self._events: list[tuple[str, object]] = []
+        self._ask: list[Steps] = []
 
     @property
     def total(self) -> int:
         """Foldings counted: done counts plus split partial counts."""
         return self.done_sum + self.split_sum
 
+    def read(self, rows: Iterable) -> Scan:
+        """Read every row, in chunks of :data:`CHUNK`; then close what is open.  Returns ``self``."""
+        rows = iter(rows)
+        while chunk := list(itertools.islice(rows, CHUNK)):
+            for row in chunk:
+                self._row(row)
+            self._settle()
+        while self._inner:
+            self._pop_inner()
+        while self._splits:
+            self._pop_split()
+        self._settle()
+        self._flush_stray()
+        if self.planned == 0:
+            self.problems.add("cover", "no task covers the tree")
+        if self._top_clash is not None:  # the walk assumes disjoint subtrees; what it found would only add noise
+            a, b = (prefix_text(s) for s in self._top_clash)
+            self.problems.replace("cover", [f"tasks {a} and {b} overlap" if a != b else f"task {a} appears twice"])
+        if self._done_clash is not None:
+            self.problems.add("overlap", "done tasks {} and {} overlap".format(*map(prefix_text, self._done_clash)))
+        return self
 
-def scan_tasks(rows: Iterable, factor: int, sample_positions: Iterable[int] = ()) -> Scan:
-    """Gather a :class:`Scan` from task rows with ``id, prefix, state, count, parent_id, worker``.
+    # -- one row ------------------------------------------------------------------------------------
+
+    def _row(self, row) -> None:
+        self.states[row.state] += 1
+        self.first_id = row.id if self.first_id is None else min(self.first_id, row.id)
+        self.last_id = row.id if self.last_id is None else max(self.last_id, row.id)
+        try:
+            steps = parse_prefix(row.prefix)
+        except PrefixError:
+            self.malformed += 1
+            self.problems.add("malformed", f"task {row.id} has the malformed prefix {row.prefix[:40]!r}")
+            return
+        ordered = self._in_order(row, steps)
+        if row.state in ("done", "split"):
+            self._counted(row, steps)
+        if ordered:
+            self._place(row, steps)
+
+    def _in_order(self, row, steps: Steps) -> bool:
+        """Whether the row comes in tree order (its stored sort key, if any, matching its prefix); else report it."""
+        stored = getattr(row, "sort_key", None)
+        if stored is not None and stored != sort_key(steps):
+            self.problems.add("order", f"task {row.id} ({row.prefix}) does not match its sort key: its prefix "
+                                       "changed after it was stored")
+            return False
+        if self._last is not None and steps < self._last:
+            self.problems.add("order", f"task {row.id} ({row.prefix}) comes after {prefix_text(self._last)}, "
+                                       "out of tree order")
+            return False
+        self._last = steps
+        return True
+
+    def _counted(self, row, steps: Steps) -> None:
+        count = int(row.count)
+        if self.digest is not None:
+            self.digest.add(steps, row.state, count)
+        if count % self.factor and len(self.not_multiple) < SHOWN:
+            self.not_multiple.append((row.prefix, count))
+        elif count % self.factor:
+            self.not_multiple_more += 1
+        if row.state == "split":
+            self.split_sum += count
+        else:
+            self.done_sum += count
+            if self._wanted and self._wanted[-1] == self._done_seen:
+                self._wanted.pop()
+                self.sample.append(row)
+            self._done_seen += 1
+
+    def _place(self, row, steps: Steps) -> None:
+        """The row's place in the tree: planned task, remainder of the split above it, overlap of done tasks."""
+        while self._splits and not _inside(self._splits[-1].steps, steps):
+            self._pop_split()
+        enclosing = self._splits[-1] if self._splits else None
+        if row.parent_id is None:
+            self._planned(steps)
+        elif enclosing is not None and enclosing.id == row.parent_id:
+            enclosing.children.append(steps)
+        else:
+            self._misparented(row.parent_id, enclosing)
+        if row.state == "done":
+            if self._done_clash is None and self._last_done is not None and is_ancestor(self._last_done, steps):
+                self._done_clash = (self._last_done, steps)
+            self._last_done = steps
+        elif row.state == "split":
+            self._splits.append(_Split(row.id, steps))
+
+    def _planned(self, steps: Steps) -> None:
+        self.planned += 1
+        if self._top_clash is None and self._last_top is not None and is_ancestor(self._last_top, steps):
+            self._top_clash = (self._last_top, steps)
+            self._inner.clear()  # the walk's findings will not be reported
+        self._last_top = steps
+        if self._top_clash is not None:
+            return
+        while self._inner and not _inside(self._inner[-1].node, steps):
+            self._pop_inner()
+        for j in range(len(self._inner[-1].node) + 1 if self._inner else 0, len(steps)):
+            parent = self._inner[-1] if self._inner else None
+            frame = _Inner(steps[:j], parent)
+            if parent is not None:
+                parent.inner.add(steps[j - 1])
+            self._inner.append(frame)
+            self._events.append(("open", frame))
+            self._ask.append(frame.node)
+        if steps:
+            self._inner[-1].tops.add(steps[-1])
+
+    def _misparented(self, parent_id: int, enclosing: _Split | None) -> None:
+        """Count rows in a row that name the same wrong parent inside the same split (one message for them)."""
+        if self._stray[:2] != [parent_id, enclosing]:
+            self._flush_stray()
+            self._stray = [parent_id, enclosing, 0]
+        self._stray[2] += 1
+
+    def _flush_stray(self) -> None:
+        parent_id, enclosing, n = self._stray
+        if n:
+            where = "none" if enclosing is None else f"task {enclosing.id}, {prefix_text(enclosing.steps)}"
+            self.problems.add("parents", f"{n} task(s) name task {parent_id} as parent, which is not the split task "
+                                         f"they lie in ({where})")
+        self._stray = [None, None, 0]
+
+    def _pop_inner(self) -> None:
+        self._events.append(("close", self._inner.pop()))
+
+    def _pop_split(self) -> None:
+        split = self._splits.pop()
+        name, children = prefix_text(split.steps), split.children
+        if not children:
+            split.problem = f"split task {name} has no remainder tasks"
+        else:
+            depth = max(len(c) for c in children)
+            base = next(c for c in children if len(c) == depth)[:-1]
+            if any(c[:-1] != base for c in children if len(c) == depth):
+                split.problem = f"the deepest remainder tasks of split task {name} are not siblings"
+            elif len(base) + 2 >= self.cells:
+                split.problem = f"remainder tasks of split task {name} go deeper than the tree"
+            else:
+                split.base = base
+                self._ask += [base[:k] for k in range(len(split.steps), len(base) + 1)]
+        self._events.append(("split", split))
+
+    # -- what the kernel says -----------------------------------------------------------------------
+
+    def _settle(self) -> None:
+        """Ask the kernel about this chunk's nodes in one batch, then judge what was opened and closed."""
+        if not self._events:
+            return
+        nodes = list(dict.fromkeys(self._ask))
+        answers = dict(zip(nodes, self.kids(nodes))) if nodes else {}
+        for what, item in self._events:
+            if what == "open":
+                self._open_inner(item, answers[item.node])
+            elif what == "close":
+                self._close_inner(item)
+            else:
+                for problem in _remainder_problems(item, answers):
+                    self.problems.add("splits", problem)
+        self._events, self._ask = [], []
+
+    def _open_inner(self, frame: _Inner, kids: list[int] | None) -> None:
+        frame.kids = kids
+        up = frame.parent
+        frame.walked = up is None or (up.walked and len(up.node) + 2 < self.cells and frame.node[-1] in (up.kids or ()))
+        if frame.walked and len(frame.node) + 2 >= self.cells:
+            self.problems.add("cover", f"tasks below {prefix_text(frame.node)} go deeper than the tree")
+
+    def _close_inner(self, frame: _Inner) -> None:
+        """Every child of a walked inner node is a planned task or an inner node, and every such child is a
+        child of it in the tree."""
+        if not frame.walked or len(frame.node) + 2 >= self.cells:
+            return
+        real = frame.kids or ()
+        for k in sorted(real):
+            if k not in frame.inner and k not in frame.tops:
+                self.problems.add("cover", f"the subtree {prefix_text(frame.node + (k,))} belongs to no task")
+        for k in sorted((frame.inner | frame.tops) - set(real)):
+            self.problems.add("cover", f"task prefix {prefix_text(frame.node + (k,))} is not a node of the tree")
+
+
+def _remainder_problems(split: _Split, answers: dict[Steps, list[int] | None]) -> list[str]:
+    """Why a split task's children are not its remainder (empty: they are).
+
+    A task that ran out of budget stopped at some node D, about to expand
+    it; its remainder is D plus, at every level from D up to the task's
+    prefix, the siblings the search had not tried yet: those before the
+    path's step in the kernel's order of children.  So D determines the
+    remainder.  D is the deepest remainder task whose last step comes
+    latest in its parent's children (the parent is the ``base`` of the
+    walk, found when the split was closed); the remainder is then
+    recomputed and compared as a set.  (Losing D itself would look like a
+    search that finished D; the id-gap check catches that.)  ``answers``
+    holds the kernel's children of every node from the split's prefix down
+    to the base.
+    """
+    if split.problem is not None:
+        return [split.problem]
+    prefix, base, name = split.steps, split.base, prefix_text(split.steps)
+    got = []
+    for at in range(len(prefix), len(base) + 1):
+        steps = answers[base[:at]]
+        if steps is None:
+            return [f"split task {name}: {prefix_text(base[:at])} is not a node of the tree with nodes below it"]
+        got.append(steps)
+        if at < len(base) and base[at] not in steps:
+            return [f"split task {name}: {prefix_text(base[:at + 1])} is not a node of the tree"]
+    last = [c[-1] for c in split.children if len(c) == len(base) + 1]
+    if any(step not in got[-1] for step in last):
+        return [f"a deepest remainder task of split task {name} is not a node of the tree"]
+    stop = base + (max(last, key=got[-1].index),)
+    expected = {stop}
+    for j in range(len(stop) - 1, len(prefix) - 1, -1):
+        siblings = got[j - len(prefix)]
+        expected.update(stop[:j] + (k,) for k in siblings[:siblings.index(stop[j])])
+    found = set(split.children)
+    missing, extra = sorted(expected - found), sorted(found - expected)
+    problems = []
+    if missing:
+        more = f" and {len(missing) - SHOWN} more" if len(missing) > SHOWN else ""
+        named = ", ".join(map(prefix_text, missing[:SHOWN]))
+        problems.append(f"split task {name} lacks remainder task(s) {named}{more}")
+    if extra:
+        problems.append(f"split task {name} has task(s) {', '.join(map(prefix_text, extra[:SHOWN]))} outside its "
+                        "remainder")
+    return problems
+
+
+def scan_tasks(rows: Iterable, factor: int, kids: Kids, cells: int, sample_positions: Iterable[int] = (),
+               digest: Certificate | None = None, keep: int | None = SHOWN) -> Scan:
+    """Read task rows in tree order once (see :class:`Scan`); ``cells`` is the map's number of cells.
 
     >>> from foldfarm.store import CheckRow
     >>> rows = [CheckRow(1, "/1", "done", 24, None, "w1"), CheckRow(2, "/2", "split", 12, None, None),
     ...         CheckRow(3, "/2/1", "done", 36, 2, "w2")]
-    >>> s = scan_tasks(rows, factor=12, sample_positions=[1])
-    >>> s.total, s.tops, s.children, [r.id for r in s.sample]
-    (72, [(1,), (2,)], {2: [(2, 1)]}, [3])
+    >>> every_node_has_three = lambda nodes: [[1, 2, 3]] * len(nodes)
+    >>> s = scan_tasks(rows, 12, every_node_has_three, 6, sample_positions=[1])
+    >>> s.total, s.planned, [r.id for r in s.sample], s.problems.messages()
+    (72, 2, [3], ['the subtree /3 belongs to no task'])
     """
-    scan = Scan(factor)
-    wanted = sorted(set(sample_positions), reverse=True)
-    done_seen = 0
-    for row in rows:
-        scan.first_id = row.id if scan.first_id is None else scan.first_id
-        scan.last_id = row.id
-        scan.states[row.state] += 1
-        try:
-            steps = parse_prefix(row.prefix)
-        except PrefixError:
-            if len(scan.malformed) < SHOWN:
-                scan.malformed.append(f"task {row.id} has the malformed prefix {row.prefix[:40]!r}")
-            else:
-                scan.malformed_more += 1
-            continue
-        if row.parent_id is None:
-            scan.tops.append(steps)
-        else:
-            scan.children.setdefault(row.parent_id, []).append(steps)
-        if row.state not in ("done", "split"):
-            continue
-        count = int(row.count)
-        scan.entries.append((steps, row.state, count))
-        if count % factor and len(scan.not_multiple) < SHOWN:
-            scan.not_multiple.append((row.prefix, count))
-        elif count % factor:
-            scan.not_multiple_more += 1
-        if row.state == "split":
-            scan.split_sum += count
-            scan.splits[row.id] = steps
-        else:
-            scan.done_sum += count
-            if wanted and wanted[-1] == done_seen:
-                wanted.pop()
-                scan.sample.append(row)
-            done_seen += 1
-    return scan
+    return Scan(factor, kids, cells, sample_positions, digest, keep).read(rows)
 
 
 # --------------------------------------------------------------------------
@@ -255,24 +613,6 @@ def published_check(shape: str, total: int, finished: bool) -> dict:
     return outcome(True, f"{total} equals the published value ({named})", sources=sources)
 
 
-def certificate(side_order: str, entries: Iterable[tuple[Steps, str, int]], tree: int = LEGACY_TREE) -> str:
-    """Digest of a run's done and split tasks on tree ``tree`` (see the module docstring for the text hashed).
-
-    >>> a = certificate("4x3", [((2,), "done", 24), ((1,), "split", 12)])
-    >>> a == certificate("4x3", [((1,), "split", 12), ((2,), "done", 24)]), a.startswith("sha256:")
-    (True, True)
-    >>> a == certificate("4x3", [((2,), "done", 36), ((1,), "split", 12)])
-    False
-    >>> a == certificate("4x3", [((2,), "done", 24), ((1,), "split", 12)], tree=2)
-    False
-    """
-    header = f"foldfarm certificate 1 {side_order}" + (f" tree {tree}" if tree != LEGACY_TREE else "")
-    digest = hashlib.sha256(f"{header}\n".encode())
-    for steps, state, count in sorted(entries):
-        digest.update(f"{prefix_text(steps)} {state} {count}\n".encode())
-    return "sha256:" + digest.hexdigest()
-
-
 def certificate_check(digest: str, stored: str | None, finished: bool = True) -> dict:
     """A newly computed digest against the one stored with the run (if any).
 
@@ -293,156 +633,38 @@ def certificate_check(digest: str, stored: str | None, finished: bool = True) ->
 # Completeness
 # --------------------------------------------------------------------------
 
-def cover_problems(prefixes: list[Steps], kids: Kids, cells: int) -> list[str]:
-    """Why the subtrees of ``prefixes`` do not partition the search tree (empty: they do).
-
-    They do when no two overlap, and walking down from the root through the
-    proper ancestors of the prefixes ("inner" nodes) every child of an
-    inner node is a prefix or another inner node, and every prefix or inner
-    node is a child of its parent.  ``kids`` is asked about every inner node
-    first, in one batch, then level by level (it must not trust nodes it has
-    not checked: :class:`TreeChildren` does not).  An overlap is reported alone.
-    """
-    clash = first_overlap(prefixes)
-    if clash is not None:  # the walk below assumes disjoint subtrees; it would only add noise
-        a, b = (prefix_text(s) for s in clash)
-        return [f"tasks {a} and {b} overlap" if a != b else f"task {a} appears twice"]
-    tops = set(prefixes)
-    if not tops:
-        return ["no task covers the tree"]
-    problems = []
-    inner = {p[:j] for p in tops for j in range(len(p))}
-    kids(sorted(inner, key=len))  # the whole walk in one batch (TreeChildren keeps the answers)
-    members: dict[Steps, set[Steps]] = {}
-    for node in tops | inner:
-        if node:
-            members.setdefault(node[:-1], set()).add(node)
-    level = [()] if () in inner else []
-    while level:
-        deep = [v for v in level if len(v) + 2 >= cells]
-        problems += [f"tasks below {prefix_text(v)} go deeper than the tree" for v in deep]
-        level = [v for v in level if len(v) + 2 < cells]
-        below = []
-        for node, steps in zip(level, kids(level)):
-            real = {node + (k,) for k in steps or ()}
-            for child in sorted(real):
-                if child in inner:
-                    below.append(child)
-                elif child not in tops:
-                    problems.append(f"the subtree {prefix_text(child)} belongs to no task")
-            problems += [f"task prefix {prefix_text(c)} is not a node of the tree"
-                         for c in sorted(members.get(node, set()) - real)]
-        level = below
-    return problems
-
-
-def split_problems(splits: list[tuple[Steps, list[Steps]]], kids: Kids, cells: int) -> list[str]:
-    """Why the children of split tasks are not their remainders (empty: they all are).
-
-    A task that ran out of budget stopped at some node D, about to expand
-    it; its remainder is D plus, at every level from D up to the task's
-    prefix, the siblings the search had not tried yet: those before the
-    path's step in the kernel's order of children.  So D determines the
-    remainder.  D is the deepest remainder task whose last step comes
-    latest in its parent's children; the remainder is then recomputed and
-    compared as a set.  (Losing D itself would look like a search that
-    finished D; the id-gap check catches that.)  All splits walk down
-    together, one batch of ``kids`` per level (after one batch of all the
-    nodes on their way down).
-    """
-    problems = []
-    walks = []  # [prefix, children, base (D's parent), kids lists from prefix down to base]
-    for prefix, children in splits:
-        name = prefix_text(prefix)
-        if not children:
-            problems.append(f"split task {name} has no remainder tasks")
-            continue
-        outside = [c for c in children if len(c) <= len(prefix) or c[:len(prefix)] != prefix]
-        if outside:
-            problems.append(f"remainder task {prefix_text(outside[0])} is not inside split task {name}")
-            continue
-        depth = max(len(c) for c in children)
-        base = next(c for c in children if len(c) == depth)[:-1]
-        if any(c[:-1] != base for c in children if len(c) == depth):
-            problems.append(f"the deepest remainder tasks of split task {name} are not siblings")
-        elif len(base) + 2 >= cells:
-            problems.append(f"remainder tasks of split task {name} go deeper than the tree")
-        else:
-            walks.append((prefix, children, base, []))
-    ready = []
-    kids(sorted({base[:k] for prefix, _, base, _ in walks for k in range(len(prefix), len(base) + 1)}, key=len))
-    while walks:
-        answers = kids([base[:len(prefix) + len(got)] for prefix, _, base, got in walks])
-        going = []
-        for walk, steps in zip(walks, answers):
-            prefix, _, base, got = walk
-            at = len(prefix) + len(got)  # length of the node just expanded
-            if steps is None:
-                problems.append(f"split task {prefix_text(prefix)}: {prefix_text(base[:at])} is not a node of the "
-                                "tree with nodes below it")
-                continue
-            got.append(steps)
-            if at == len(base):
-                ready.append(walk)
-            elif base[at] in steps:
-                going.append(walk)
-            else:
-                problems.append(f"split task {prefix_text(prefix)}: {prefix_text(base[:at + 1])} is not a node of "
-                                "the tree")
-        walks = going
-    for prefix, children, base, got in ready:
-        name = prefix_text(prefix)
-        last = [c[-1] for c in children if len(c) == len(base) + 1]
-        if any(step not in got[-1] for step in last):
-            problems.append(f"a deepest remainder task of split task {name} is not a node of the tree")
-            continue
-        stop = base + (max(last, key=got[-1].index),)
-        expected = {stop}
-        for j in range(len(stop) - 1, len(prefix) - 1, -1):
-            siblings = got[j - len(prefix)]
-            expected.update(stop[:j] + (k,) for k in siblings[:siblings.index(stop[j])])
-        found = set(children)
-        missing, extra = sorted(expected - found), sorted(found - expected)
-        if missing:
-            more = f" and {len(missing) - SHOWN} more" if len(missing) > SHOWN else ""
-            problems.append(f"split task {name} lacks remainder task(s) "
-                            f"{', '.join(map(prefix_text, missing[:SHOWN]))}{more}")
-        if extra:
-            problems.append(f"split task {name} has task(s) {', '.join(map(prefix_text, extra[:SHOWN]))} "
-                            "outside its remainder")
-    return problems
-
-
-def completeness_check(scan: Scan, kids: Kids, cells: int, gaps: list[tuple[int, int]] = ()) -> dict:
+def completeness_check(scan: Scan, gaps: Iterable[tuple[int, int]] = ()) -> dict:
     """No open task, the plan covers the tree, splits have their remainders, no overlap, no deleted task.
 
-    ``gaps`` are ranges of task ids next to this run's tasks that no task has.
+    ``scan`` has read every row; ``gaps`` are ranges of task ids next to
+    this run's tasks that no task has.
     """
-    problems = list(scan.malformed)
-    problems += [f"{scan.malformed_more} more malformed prefix(es)"] if scan.malformed_more else []
-    open_tasks = {s: scan.states[s] for s in ("pending", "running", "failed") if scan.states[s]}
-    if open_tasks:
-        problems.append("open tasks: " + ", ".join(f"{n} {s}" for s, n in open_tasks.items()))
-    problems += [f"task ids {a}..{b} are missing from the store (ids are never freed: deleted?)" if a != b else
-                 f"task id {a} is missing from the store (ids are never freed: deleted?)" for a, b in gaps]
-    problems += cover_problems(scan.tops, kids, cells)
-    for parent, steps in scan.children.items():
-        if parent not in scan.splits:
-            problems.append(f"{len(steps)} task(s) name task {parent} as parent, which is not a split task of this run")
-    problems += split_problems([(s, scan.children.get(i, [])) for i, s in scan.splits.items()], kids, cells)
-    clash = first_overlap(s for s, state, _ in scan.entries if state == "done")
-    if clash is not None:
-        problems.append("done tasks {} and {} overlap".format(*map(prefix_text, clash)))
+    problems = completeness_problems(scan, gaps)
     tasks = sum(scan.states.values())
     if problems:
-        return outcome(False, _listed(problems), problems=len(problems))
+        return outcome(False, problems.detail(), problems=len(problems))
     return outcome(True, f"all {tasks} task(s) closed ({scan.states['done']} done, {scan.states['split']} split); "
-                         f"the {len(scan.tops)} planned task(s) cover the tree; every split has its whole remainder; "
+                         f"the {scan.planned} planned task(s) cover the tree; every split has its whole remainder; "
                          "no done tasks overlap; no task id is missing")
 
 
+def completeness_problems(scan: Scan, gaps: Iterable[tuple[int, int]] = ()) -> Problems:
+    """The scan's problems with the open tasks and the missing ids (the more malformed prefixes summed up)."""
+    problems = copy.deepcopy(scan.problems)
+    if scan.malformed > SHOWN:
+        problems.replace("malformed", problems.kept["malformed"][:SHOWN] +
+                         [f"{scan.malformed - SHOWN} more malformed prefix(es)"])
+    open_tasks = {s: scan.states[s] for s in ("pending", "running", "failed") if scan.states[s]}
+    if open_tasks:
+        problems.add("open", "open tasks: " + ", ".join(f"{n} {s}" for s, n in open_tasks.items()))
+    for a, b in gaps:
+        problems.add("gaps", f"task ids {a}..{b} are missing from the store (ids are never freed: deleted?)"
+                     if a != b else f"task id {a} is missing from the store (ids are never freed: deleted?)")
+    return problems
+
+
 class TreeChildren:
-    """:data:`Kids` from the kernel for one map's tree, memoised, a batch at a time.
+    """:data:`Kids` from the kernel for one map's tree, memoised (the last :attr:`KEEP` nodes), a batch at a time.
 
     ``sides`` are the working sides of the map, ``tree`` the run's search
     tree (:func:`foldfarm.symmetry.tree_of`).  A node is expanded only
@@ -451,11 +673,14 @@ class TreeChildren:
     compiled search does not check its input.  ``fetch(nodes, trusted)``
     does the kernel's part (:func:`foldfarm.worker.children` for these
     sides and tree): by default in this process, or on a Dask worker (see
-    :func:`verify_run`), where asking for a whole walk's nodes at once saves
-    a round trip a level.
+    :func:`verify_run`), where asking for a chunk's nodes at once saves
+    a round trip a node.  The memo keeps the nodes asked about most
+    recently, so memory stays bounded however many nodes a pass asks
+    about; a node whose parent was forgotten is replayed (same answer).
     """
 
     BATCH = 4096
+    KEEP = 1 << 16
 
     def __init__(self, sides: tuple[int, ...], tree: int,
                  fetch: Callable[[list[Steps], list[bool]], list] | None = None):
@@ -463,28 +688,37 @@ class TreeChildren:
 
         self.cells = math.prod(sides)
         self.fetch = fetch or (lambda nodes, trusted: children(sides, nodes, trusted, tree=tree))
-        self.memo: dict[Steps, list[int] | None] = {}
+        self.memo: OrderedDict[Steps, list[int] | None] = OrderedDict()
 
     def __call__(self, nodes: list[Steps]) -> list[list[int] | None]:
-        todo = sorted((v for v in dict.fromkeys(nodes) if v not in self.memo), key=len)  # parents first
+        known = {}
+        for node in dict.fromkeys(nodes):
+            if node in self.memo:
+                self.memo.move_to_end(node)
+                known[node] = self.memo[node]
+        todo = sorted((v for v in dict.fromkeys(nodes) if v not in known), key=len)  # parents first
         for start in range(0, len(todo), self.BATCH):
             batch, trusted = [], []
             for node in todo[start:start + self.BATCH]:
+                parent = node[:-1] if node else None
                 if len(node) + 2 >= self.cells:
-                    self.memo[node] = None
-                elif node and node[:-1] in self.memo:  # its parent was judged, and so it is
-                    steps = self.memo[node[:-1]]
+                    known[node] = None
+                elif parent is not None and (parent in known or parent in self.memo):  # judged by its parent
+                    steps = known[parent] if parent in known else self.memo[parent]
                     if steps is not None and node[-1] in steps:
                         batch.append(node)
                         trusted.append(True)
                     else:
-                        self.memo[node] = None
+                        known[node] = None
                 else:  # replayed, or judged by its parent in the same batch
                     batch.append(node)
                     trusted.append(False)
             for node, steps in zip(batch, self.fetch(batch, trusted)):
-                self.memo[node] = steps
-        return [self.memo[v] for v in nodes]
+                known[node] = steps
+        self.memo.update(known)
+        while len(self.memo) > self.KEEP:
+            self.memo.popitem(last=False)
+        return [known[v] for v in nodes]
 
 
 # --------------------------------------------------------------------------
@@ -503,7 +737,7 @@ def parse_fraction(value: object) -> float:
 
 
 def sample_positions(done: int, fraction: float, seed: int) -> list[int]:
-    """Positions (0-based, in id order) of the done tasks to audit: ``fraction`` of ``done``, at least one.
+    """Positions (0-based, among done tasks in tree order) of those to audit: ``fraction`` of ``done``, at least one.
 
     >>> sample_positions(1000, 0.01, 7) == sample_positions(1000, 0.01, 7), len(sample_positions(50, 0.01, 0))
     (True, 1)
@@ -711,11 +945,12 @@ def verify_run(store, run_id: int, *, client=None, audit_fraction: float | None 
     if client is not None:
         positions = sample_positions(store.progress(run_id).tasks["done"], fraction, seed)
     kids = TreeChildren(sides, tree, None if client is None else _on_a_worker(client, sides, tree))
-    scan = scan_tasks(store.check_rows(run_id), symmetry_factor(sides, tree), positions)
+    scan = scan_tasks(store.check_rows(run_id), symmetry_factor(sides, tree), kids, cells, positions,
+                      Certificate(run.side_order, tree))
     gaps = [(g.first, g.last) for g in store.missing_task_ids(run_id)]
     checks = {
         "total": total_check(scan, run.total, finished),
-        "completeness": completeness_check(scan, kids, cells, gaps),
+        "completeness": completeness_check(scan, gaps),
         "divisibility": divisibility_check(scan, sides, tree),
     }
     if fraction == 0:
@@ -735,7 +970,7 @@ def verify_run(store, run_id: int, *, client=None, audit_fraction: float | None 
         checks["transpose"] = _transpose(store, run, recount, scan.total, previous)
     else:
         checks["transpose"] = outcome(None, "not asked (verify --transpose counts the map in another side order)")
-    digest = certificate(run.side_order, scan.entries, tree)
+    digest = scan.digest.digest()
     checks["certificate"] = certificate_check(digest, run.certificate, finished)
     if finished:
         store.set_verification(run_id, passed(checks), checks=checks,

@@ -6,6 +6,7 @@ published table (OEIS, named beside each value); nothing is hand-typed.
 
 from __future__ import annotations
 
+import dataclasses
 import itertools
 import math
 import subprocess
@@ -14,6 +15,7 @@ import sys
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
+import reference_check as reference
 from local_driver import HERE, count_here, count_pending
 from sqlalchemy import delete, select, update
 
@@ -62,19 +64,39 @@ def test_every_published_count_is_divisible_by_the_symmetry_factor():
                 assert row.count % factor == 0, f"{row.shape} ({row.source}) tree {tree}: factor {factor}"
 
 
+def rows_of(tasks) -> list[CheckRow]:
+    """Check rows, in tree order, of ``(steps, state, count, parent index or None)`` (ids are 1 + the index)."""
+    rows = [CheckRow(i + 1, prefix_text(s), state, count, None if p is None else p + 1, HERE)
+            for i, (s, state, count, p) in enumerate(tasks)]
+    return sorted(rows, key=lambda r: parse_prefix(r.prefix))
+
+
+def problems(tasks, tables, kind: str) -> list[str]:
+    """Every completeness problem of ``kind`` a pass over ``tasks`` (see :func:`rows_of`) finds."""
+    scan = check.scan_tasks(rows_of(tasks), 1, kids_of(tables), tables.n, keep=None)
+    return scan.problems.kept[kind]
+
+
+def cover_problems(tops, tables) -> list[str]:
+    return problems([(t, "done", 0, None) for t in tops], tables, "cover")
+
+
+def split_problems(prefix, children, tables) -> list[str]:
+    return problems([(prefix, "split", 0, None)] + [(c, "done", 0, 0) for c in children], tables, "splits")
+
+
 def test_plan_covers_the_tree_and_damage_is_named():
     tables = prepare("4x4")
-    kids = kids_of(tables)
     tasks = list(plan(tables, 40))
-    assert check.cover_problems(tasks, kids, tables.n) == []
+    assert cover_problems(tasks, tables) == []
     missing = tasks[len(tasks) // 2]
-    problems = check.cover_problems([t for t in tasks if t != missing], kids, tables.n)
-    assert problems and prefix_text(missing) in " ".join(problems)
+    found = cover_problems([t for t in tasks if t != missing], tables)
+    assert found and prefix_text(missing) in " ".join(found)
     inside = missing + (expand(tables, missing)[0][0],) if len(missing) + 2 < tables.n else missing[:-1]
-    assert "overlap" in check.cover_problems(tasks + [inside], kids, tables.n)[0]
-    assert check.cover_problems([], kids, tables.n) == ["no task covers the tree"]
+    assert "overlap" in cover_problems(tasks + [inside], tables)[0]
+    assert cover_problems([], tables) == ["no task covers the tree"]
     bogus = tasks[0][:-1] + (99,)
-    assert any("not a node" in p for p in check.cover_problems(tasks + [bogus], kids, tables.n))
+    assert any("not a node" in p for p in cover_problems(tasks + [bogus], tables))
 
 
 @settings(max_examples=60, deadline=None)
@@ -91,28 +113,48 @@ def test_a_real_remainder_passes_and_any_child_but_the_stopping_node_is_missed(s
             break
         prefix += (children[pick % len(children)],)
     out = count_below(tables, prefix, budget=budget)
-    kids = kids_of(tables)
     if out.complete:
         return
-    assert check.split_problems([(prefix, out.remainder)], kids, tables.n) == []
+    assert split_problems(prefix, out.remainder, tables) == []
     if len(out.remainder) > 1:
         lost = out.remainder[1 + pick % (len(out.remainder) - 1)]
         rest = [r for r in out.remainder if r != lost]
-        problems = check.split_problems([(prefix, rest)], kids, tables.n)
-        assert problems and prefix_text(lost) in problems[0]
-    extra = check.split_problems([(prefix, out.remainder + [prefix])], kids, tables.n)
-    assert extra and "not inside" in extra[0]
+        found = split_problems(prefix, rest, tables)
+        assert found and prefix_text(lost) in found[0]
+    deepest = max(len(r) for r in out.remainder)
+    last = [r for r in out.remainder if len(r) == deepest]
+    stop = max(last, key=lambda r: expand(tables, r[:-1])[0].index(r[-1]))
+    # Siblings the search finished, above the deepest level (a finished sibling of the stopping node looks like
+    # a search that stopped there instead: the total and the certificate see that, not the structure).
+    done = [stop[:j] + (k,) for j in range(len(prefix), len(stop) - 1)
+            for k in expand(tables, stop[:j])[0][expand(tables, stop[:j])[0].index(stop[j]) + 1:]]
+    if done:
+        found = split_problems(prefix, out.remainder + done[pick % len(done):][:1], tables)
+        assert found and "outside its remainder" in found[0]
+    twice = problems([(prefix, "split", 0, None), (prefix, "done", 0, 0)] + [(c, "done", 0, 0) for c in out.remainder],
+                     tables, "parents")
+    assert twice and "name task 1 as parent, which is not the split task they lie in" in twice[0]
 
 
 def test_nodes_outside_the_tree_are_reported_not_expanded():
     tables = prepare("3x4")
     kids = kids_of(tables)
     assert kids([(1, 3), (9,), (1, 2, 1, 1, 1, 1, 1, 1, 1, 1)]) == [None, None, None]  # illegal, illegal, too deep
-    problems = check.split_problems([((1, 3), [(1, 3, 1)])], kids, tables.n)
-    assert problems == ["split task /1/3: /1/3 is not a node of the tree with nodes below it"]
+    assert split_problems((1, 3), [(1, 3, 1)], tables) == \
+        ["split task /1/3: /1/3 is not a node of the tree with nodes below it"]
     legal = (1, 2, expand(tables, (1, 2))[0][0])
-    problems = check.split_problems([((1, 2), [legal[:2] + (12,)])], kids, tables.n)
-    assert problems == ["a deepest remainder task of split task /1/2 is not a node of the tree"]
+    assert split_problems((1, 2), [legal[:2] + (12,)], tables) == \
+        ["a deepest remainder task of split task /1/2 is not a node of the tree"]
+
+
+def test_the_memo_of_the_trees_children_stays_bounded_and_answers_alike(monkeypatch):
+    tables = prepare("3x4")
+    nodes = [(1, 2) + tail for tail in itertools.product(range(1, 5), repeat=3)] + [(1,), (1, 2)]
+    everything = kids_of(tables)(nodes)
+    monkeypatch.setattr(check.TreeChildren, "KEEP", 5)
+    small = kids_of(tables)
+    assert [small([n])[0] for n in nodes] == everything and small(nodes) == everything
+    assert len(small.memo) == 5
 
 
 def test_certificate_depends_on_every_pair_and_nothing_else():
@@ -128,14 +170,132 @@ def test_certificate_depends_on_every_pair_and_nothing_else():
 def test_scan_sums_exactly_and_flags_counts_off_the_factor():
     big = 2**62  # far above 2**53: sums must stay exact
     rows = [CheckRow(1, "/1", "done", big, None, HERE), CheckRow(2, "/2", "split", 24, None, HERE),
-            CheckRow(3, "/2/1", "done", big + 24, 2, HERE), CheckRow(4, "/3", "pending", None, None, None),
-            CheckRow(5, "/9//", "done", 24, None, HERE)]
-    scan = check.scan_tasks(rows, 24, [0, 1])
+            CheckRow(5, "/9//", "done", 24, None, HERE), CheckRow(3, "/2/1", "done", big + 24, 2, HERE),
+            CheckRow(4, "/3", "pending", None, None, None)]
+    scan = check.scan_tasks(rows, 24, kids_of(prepare("3x4")), 12, [0, 1])
     assert scan.total == 2 * big + 48
     assert scan.states == {"done": 3, "split": 1, "pending": 1}
+    assert (scan.first_id, scan.last_id) == (1, 5)
     assert [r.id for r in scan.sample] == [1, 3]
     assert scan.not_multiple == [("/1", big), ("/2/1", big + 24)]  # 2**62 is not a multiple of 24
-    assert scan.malformed and "/9//" in scan.malformed[0]
+    assert scan.malformed == 1 and "/9//" in scan.problems.kept["malformed"][0]
+
+
+def test_rows_out_of_tree_order_or_off_their_sort_key_are_reported():
+    """A store orders the rows by a sort key written with each task; a prefix changed afterwards shows."""
+    kids = kids_of(prepare("3x4"))
+    rows = [CheckRow(1, "/1", "done", 0, None, HERE), CheckRow(3, "/2", "done", 0, None, HERE),
+            CheckRow(2, "/1/2", "done", 0, None, HERE)]
+    scan = check.scan_tasks(rows, 1, kids, 12)
+    assert scan.problems.kept["order"] == ["task 2 (/1/2) comes after /2, out of tree order"]
+
+    keyed = [CheckRow(1, "/1", "done", 0, None, HERE, "00001"), CheckRow(2, "/3", "done", 0, None, HERE, "00002")]
+    scan = check.scan_tasks(keyed, 1, kids, 12)
+    assert scan.problems.kept["order"] == ["task 2 (/3) does not match its sort key: its prefix changed after it "
+                                           "was stored"]
+    assert scan.total == 0 and check.completeness_check(scan)["ok"] is False
+
+
+def simulated_run(tables, tasks: int, budget: int, most: int = 300) -> list[CheckRow]:
+    """The rows of a run counted in id order as a store holds them: planned tasks, then remainders (ids
+    consecutive); a task is counted whole once ``most`` tasks exist."""
+    rows: list[CheckRow] = []
+    queue = [(steps, None) for steps in plan(tables, tasks)]
+    while len(rows) < len(queue):
+        steps, parent = queue[len(rows)]
+        out = count_below(tables, steps, budget=budget if len(queue) < most else None)
+        row_id = len(rows) + 1
+        rows.append(CheckRow(row_id, prefix_text(steps), "done" if out.complete else "split", out.count, parent, HERE))
+        queue += [(r, row_id) for r in ([] if out.complete else out.remainder)]
+    return rows
+
+
+def tampered(rows: list[CheckRow], damage: str, pick: int, factor: int) -> list[CheckRow]:
+    """``rows`` with one change a careless or dishonest hand might make (the store keeps prefixes unique in a run)."""
+    rows = list(rows)
+    i = pick % len(rows)
+    row = rows[i]
+    steps = parse_prefix(row.prefix)
+    taken = {r.prefix for r in rows}
+    above = [steps[:j] for j in range(len(steps)) if prefix_text(steps[:j]) not in taken]
+    if damage == "count":
+        rows[i] = dataclasses.replace(row, count=row.count + (1 if pick % 2 else factor))
+    elif damage == "delete":
+        del rows[i]
+    elif damage == "pending":
+        rows[i] = dataclasses.replace(row, state="pending", count=None)
+    elif damage == "overlap" and above:
+        rows.append(CheckRow(len(rows) + 1, prefix_text(above[-1]), "done", factor, row.parent_id, HERE))
+    elif damage == "parent":
+        other = rows[(pick // len(rows)) % len(rows)].id
+        rows[i] = dataclasses.replace(row, parent_id=None if row.parent_id is not None and pick % 3 == 0 else other)
+    elif damage == "prefix":
+        moved = {0: prefix_text(steps + (99,)), 1: prefix_text(above[-1]) if above else "", 2: row.prefix + "//"}
+        text = moved[pick % 3]
+        rows[i] = dataclasses.replace(row, prefix=text if text and text not in taken else row.prefix + "//")
+    return rows
+
+
+def well_formed(prefix: str) -> bool:
+    try:
+        parse_prefix(prefix)
+    except PrefixError:
+        return False
+    return True
+
+
+def tree_order(rows: list[CheckRow]) -> list[CheckRow]:
+    """Rows as the store streams them to the checks: malformed prefixes first, then tuple order of prefixes."""
+    return sorted(rows, key=lambda r: (1, parse_prefix(r.prefix)) if well_formed(r.prefix) else (0, ()))
+
+
+@settings(max_examples=150, deadline=None)
+@given(shape=st.sampled_from(["3x4", "2x2x3", "2x5", "1x8", "3x3", "2x2x2", "4x4"]), tasks=st.integers(1, 40),
+       budget=st.integers(3, 80), damage=st.sampled_from(["none", "count", "delete", "pending", "overlap", "parent",
+                                                          "prefix"]),
+       pick=st.integers(0, 10**6), fraction=st.sampled_from([0.0, 0.1, 1.0]))
+def test_the_streamed_checks_agree_with_the_previous_implementation(shape, tasks, budget, damage, pick, fraction):
+    """Same totals, verdicts, certificate and (but where parents were changed) the same completeness problems as
+    the list-based implementation before streaming (tests/reference_check.py)."""
+    tables = prepare(shape)
+    factor = check.symmetry_factor(tables.sides, tables.tree)
+    rows = tampered(simulated_run(tables, tasks, budget), damage, pick, factor)
+    ids = sorted(r.id for r in rows)
+    gaps = [(a + 1, b - 1) for a, b in itertools.pairwise(ids) if b > a + 1]
+    side_order = "x".join(map(str, tables.sides))
+    done = sum(1 for r in rows if r.state == "done")
+    positions = check.sample_positions(done, fraction, pick)
+
+    old = reference.scan_tasks(rows, factor, positions)
+    new = check.scan_tasks(tree_order(rows), factor, kids_of(tables), tables.n, positions,
+                           check.Certificate(side_order, tables.tree), keep=None)
+    assert (new.total, new.done_sum, new.split_sum, new.states) == (old.total, old.done_sum, old.split_sum, old.states)
+    assert (new.first_id, new.last_id) == (old.first_id, old.last_id)
+    stored = old.total if damage == "none" else old.total - factor
+    assert check.total_check(new, stored, True) == check.total_check(old, stored, True)
+    old_div, new_div = check.divisibility_check(old, tables.sides, tables.tree), \
+        check.divisibility_check(new, tables.sides, tables.tree)
+    assert new_div["ok"] == old_div["ok"]
+    assert sorted(new.not_multiple) == sorted(old.not_multiple) or old.not_multiple_more
+    assert new.digest.digest() == reference.certificate(side_order, old.entries, tables.tree)
+    in_order = [r for r in tree_order(rows) if r.state == "done" and well_formed(r.prefix)]
+    assert new.sample == [in_order[p] for p in positions if p < len(in_order)]
+
+    old_problems = reference.completeness_problems(old, kids_of(tables), tables.n, gaps)
+    old_check = reference.completeness_check(old, kids_of(tables), tables.n, gaps)
+    new_check = check.completeness_check(new, gaps)
+    assert new_check["ok"] == old_check["ok"], (old_problems, check.completeness_problems(new, gaps).messages())
+    if damage in ("none", "count"):
+        assert new_check == old_check
+    if damage in ("parent", "prefix"):  # a task under another split than its parent: other messages, same verdict
+        return
+    # Tasks that name a parent other than the split they lie in (a deleted split, a task added beside a split's
+    # remainder with the split as parent) are reported where they lie, not per parent id.
+    new_problems = check.completeness_problems(new, gaps).messages()
+    old_parents, new_parents = ([p for p in problems if " as parent, which is not " in p or "is not inside split" in p]
+                                for problems in (old_problems, new_problems))
+    assert bool(new_parents) == bool(old_parents), (old_problems, new_problems)
+    assert sorted(set(new_problems) - set(new_parents)) == sorted(set(old_problems) - set(old_parents))
 
 
 def test_published_check_names_its_source():
@@ -285,6 +445,17 @@ def test_a_missing_child_fails_completeness(counted, which):
         assert f"lacks remainder task(s) {victim.prefix}" in checks["completeness"]["detail"]
     else:  # the structure alone cannot tell; the id left behind can
         assert f"task id {victim.id} is missing" in checks["completeness"]["detail"]
+
+
+def test_a_prefix_edited_in_the_store_fails_completeness(counted):
+    """The store writes each task's sort key beside its prefix; a prefix changed afterwards no longer matches."""
+    store, run_id = counted
+    a, b = tasks_where(store, Task.run_id == run_id, Task.parent_id.is_(None), Task.state == "done")[:2]
+    change(store, update(Task).where(Task.id == a.id).values(prefix=a.prefix + "/1"))
+    checks = _failed(store, run_id)
+    assert checks["completeness"]["ok"] is False
+    assert f"task {a.id} ({a.prefix}/1) does not match its sort key" in checks["completeness"]["detail"]
+    assert checks["certificate"]["ok"] is False
 
 
 def test_a_duplicate_task_fails_completeness(counted):
@@ -564,8 +735,9 @@ def test_a_run_made_before_tree_two_resumes_on_its_own_tree(client, new_store_ur
         old_factor = 2 * 12  # tree 1 of 3x4: 12 rotations x 2 (turning the stack over)
         assert checks["divisibility"]["factor"] == old_factor == check.symmetry_factor((3, 4), LEGACY_TREE)
         assert "tree 1" in checks["divisibility"]["detail"]
-        scan = check.scan_tasks(store.check_rows(run_id), old_factor)
-        assert info.certificate == check.certificate("3x4", scan.entries)  # the digest text of before tree 2
+        entries = [(parse_prefix(r.prefix), r.state, r.count) for r in store.check_rows(run_id)
+                   if r.state in ("done", "split")]
+        assert info.certificate == check.certificate("3x4", entries)  # the digest text of before tree 2
 
 
 def test_a_run_on_a_tree_this_version_does_not_know_is_refused_in_one_line(tmp_path):

@@ -121,6 +121,34 @@ def test_csv_export_round_trips_exact_integers(filled, tmp_path):
     assert audits.splitlines() == [",".join(report.AUDIT_COLUMNS)]
 
 
+def test_exports_write_each_task_as_it_is_read_and_the_same_bytes_as_from_the_whole_list(filled):
+    """An export of a run of any size holds one task at a time: the writers write a task before they read the
+    next one, and the command's streamed output is byte for byte what the writers make of the whole list."""
+    url, run_id = filled
+    with Store(url) as store:
+        tasks = store.tasks(run_id)  # the whole list, in id order
+        detail = report.run_detail(store.get_run(run_id), store.progress(run_id), store.audit_summary(run_id))
+        audits = store.audits(run_id)
+    whole_json, whole_csv = io.StringIO(), io.StringIO()
+    report.write_json(whole_json, detail, audits, tasks)
+    report.write_csv(whole_csv, report.TASK_COLUMNS, (report.task_dict(t) for t in tasks))
+    assert foldfarm("export", str(run_id), "--store", url).stdout == whole_json.getvalue()
+    assert foldfarm("export", str(run_id), "--store", url, "--format", "csv").stdout == whole_csv.getvalue()
+
+    def one_at_a_time(out: io.StringIO, written: str):
+        for n, task in enumerate(tasks):
+            if n:  # the previous task is out before this one is handed over
+                assert written.format(tasks[n - 1].id) in out.getvalue()
+            yield task
+
+    out = io.StringIO()
+    assert report.write_json(out, detail, audits, one_at_a_time(out, '{{"id": {}, ')) == len(tasks)
+    assert out.getvalue() == whole_json.getvalue()
+    out = io.StringIO()
+    report.write_csv(out, report.TASK_COLUMNS, (report.task_dict(t) for t in one_at_a_time(out, "\n{},")))
+    assert out.getvalue() == whole_csv.getvalue()
+
+
 def test_export_keeps_integers_beyond_double_precision_exact():
     """JSON readers that use doubles round above 2**53, so the export writes such integers as text."""
     moment = datetime(2026, 1, 2, 3, 4, 5)

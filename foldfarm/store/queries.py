@@ -164,6 +164,8 @@ class CheckRow:
     count: int | None
     parent_id: int | None
     worker: str | None
+    #: The key stored beside the prefix; a prefix edited after it was stored no longer matches it.
+    sort_key: str | None = None
 
 
 @dataclass(frozen=True)
