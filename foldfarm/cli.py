@@ -281,6 +281,9 @@ def run_cmd(
     given_order: bool = typer.Option(False, "--given-order", help="Search the sides in the order given."),
     store_wait: str = typer.Option(None, "--store-wait", help="Seconds to wait for a store that stops answering "
                                    "(a database restart) before stopping the run cleanly (default 300)."),
+    scheduler_wait: str = typer.Option(None, "--scheduler-wait", help="Seconds to try reconnecting to a --scheduler "
+                                       "that goes away (killed, its node rebooted) before stopping the run cleanly "
+                                       "(default 300)."),
     cluster: str = ClusterOpt,
     jobs: str = JobsOpt,
     job_cores: str = JobCoresOpt,
@@ -332,6 +335,8 @@ def run_cmd(
         values["order"] = "given"
     if store_wait is not None:
         values["store_wait"] = _seconds(store_wait, "--store-wait")
+    if scheduler_wait is not None:
+        values["scheduler_wait"] = _seconds(scheduler_wait, "--scheduler-wait")
     settings = Settings.from_dict(values)
     if sbatch is not None:
         _write_batch_script(sbatch, name or f"foldfarm-{shape_text}", spec)
