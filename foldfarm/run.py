@@ -1165,6 +1165,7 @@ def scheduler_security(spec: ClusterSpec):
 def _quiet_logs(quiet: bool) -> None:
     import logging
 
+    _hush_dask_reconnect()  # a lost scheduler is the coordinator's to report, whenever it happens
     if quiet:
         for name in ("distributed", "distributed.nanny", "distributed.scheduler", "distributed.worker",
                      "distributed.deploy.adaptive", "dask_jobqueue"):

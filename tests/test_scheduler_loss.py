@@ -333,3 +333,28 @@ def test_a_local_cluster_that_loses_its_scheduler_stops_at_once_and_resumes(tmp_
     assert json.loads(out.stdout)["count"] == LONG_COUNT, f"{LONG}: OEIS A000136 publishes {LONG_COUNT}"
     assert_partition(url, 1, LONG_COUNT)
 
+
+
+@pytest.mark.slow
+def test_a_scheduler_lost_while_the_run_is_planned_is_one_line(tmp_path, port):
+    """The plan is made on a worker: a scheduler lost meanwhile ends the command in one line, nothing half-stored."""
+    first = Scheduler(port)
+    try:
+        url = f"sqlite:///{tmp_path / 'plan.sqlite'}"
+        proc = start("run", "7x7", "--tasks", "200000", "--scheduler", first.address, "--store", url,
+                     "--scheduler-wait", "0")
+        time.sleep(3)
+        first.kill()
+        stdout, stderr = proc.communicate(timeout=120)
+    finally:
+        first.close()
+    assert proc.returncode == 130 and "Traceback" not in stdout + stderr, stdout + stderr
+    lines = stderr_lines(stderr)
+    with Store(url) as store:
+        runs = store.list_runs()
+        if lines == [f"foldfarm: lost the Dask scheduler at {first.address} before the run was planned; "
+                     "nothing was stored"]:
+            assert runs == []
+        else:  # planned before the scheduler went: the loop's clean stop
+            assert "lost the Dask scheduler" in lines[0] and "resume with: foldfarm resume 1" in lines[-1], stderr
+            assert store.progress(1).tasks["running"] == 0 and store.lease(1) is None
