@@ -68,7 +68,7 @@ class SchedulerGone(Exception):
 
 
 def scheduler_lost(status: str, error: BaseException | None = None) -> bool:
-    """Whether a client in ``status`` (``Client.status``), or the ``error`` a future or a call gave, means the scheduler is gone.
+    """Whether a client in ``status`` (``Client.status``), or the ``error`` of a future or call, means a lost scheduler.
 
     A future cancelled for any other reason (a task Dask gave up on) is not a
     lost scheduler, nor is an error raised by a task itself.

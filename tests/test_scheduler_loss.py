@@ -297,7 +297,7 @@ def test_a_scheduler_not_back_within_the_wait_stops_cleanly_and_resume_gives_the
 
 
 def _drive_and_lose_the_local_scheduler(url: str) -> tuple[list[str], float]:
-    """Drive LONG on a local cluster and close its scheduler once 40 tasks are done; the notices and the stop's delay."""
+    """Drive LONG on a local cluster, close its scheduler once 40 tasks are done; the notices, the stop's delay."""
     from foldfarm import run as runner
 
     said, lost = [], []
@@ -323,7 +323,8 @@ def _drive_and_lose_the_local_scheduler(url: str) -> tuple[list[str], float]:
 def test_a_local_cluster_that_loses_its_scheduler_stops_at_once_and_resumes(tmp_path):
     url = f"sqlite:///{tmp_path / 'local.sqlite'}"
     said, stopped = _drive_and_lose_the_local_scheduler(url)
-    assert len(said) == 1 and said[0].startswith("foldfarm: lost the Dask scheduler of the cluster foldfarm started"), said
+    assert len(said) == 1, said
+    assert said[0].startswith("foldfarm: lost the Dask scheduler of the cluster foldfarm started"), said
     assert said[0].endswith("stopping run 1") and stopped < 30, (said, stopped)  # no wait: nothing to reconnect to
     with Store(url) as store:
         assert store.get_run(1).state == "stopped" and store.progress(1).tasks["running"] == 0
