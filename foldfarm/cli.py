@@ -196,10 +196,26 @@ def _drive(store, run_id: int, spec, identity: dict | None, as_json: bool, quiet
 
     from foldfarm import check
     from foldfarm import run as runner
+    from foldfarm.reconnect import scheduler_lost
     from foldfarm.report import verdict_lines
 
     def terminate(signum, frame):  # a batch system's SIGTERM stops the run as cleanly as Ctrl-C
         raise KeyboardInterrupt
+
+    def stopped(why: str, say: bool = False) -> None:
+        """Say how to go on from a clean stop (a run not planned yet has nothing to resume); exit 130.
+
+        ``say``: the reason is news (not a stop the loop reported already).
+        """
+        if not run_id:
+            typer.echo(f"foldfarm: {why} before the run was planned; nothing was stored", err=True)
+        else:
+            if say:
+                typer.echo(f"foldfarm: {why}", err=True)
+            again = shlex.join(["foldfarm", "resume", str(run_id), "--store", store.display_url,
+                                *runner.spec_arguments(spec)])
+            typer.echo(f"foldfarm: stopped run {run_id}; resume with: {again}", err=True)
+        raise typer.Exit(130) from None
 
     signal.signal(signal.SIGTERM, terminate)
     holder = runner.holder_name()
@@ -225,13 +241,12 @@ def _drive(store, run_id: int, spec, identity: dict | None, as_json: bool, quiet
                 summary = runner.drive(store, client, run_id, holder=holder, take_over=take_over, on_progress=show,
                                        threads=threads)
         except (runner.Stopped, KeyboardInterrupt):  # Ctrl-C in the loop, or before it began
-            if not run_id:
-                typer.echo("foldfarm: interrupted before the run was planned; nothing was stored", err=True)
-            else:
-                again = shlex.join(["foldfarm", "resume", str(run_id), "--store", store.display_url,
-                                    *runner.spec_arguments(spec)])
-                typer.echo(f"foldfarm: stopped run {run_id}; resume with: {again}", err=True)
-            raise typer.Exit(130) from None
+            stopped("interrupted")
+        except Exception as exc:  # the scheduler lost outside the loop that waits for it (planning, the checks)
+            if client is None or not scheduler_lost(client.status, exc):
+                raise
+            where = f" at {spec.scheduler}" if spec.scheduler else " of the cluster foldfarm started"
+            stopped(f"lost the Dask scheduler{where}", say=True)
         finally:
             if client is not None:
                 runner.disconnect(client, cluster)
@@ -281,6 +296,9 @@ def run_cmd(
     given_order: bool = typer.Option(False, "--given-order", help="Search the sides in the order given."),
     store_wait: str = typer.Option(None, "--store-wait", help="Seconds to wait for a store that stops answering "
                                    "(a database restart) before stopping the run cleanly (default 300)."),
+    scheduler_wait: str = typer.Option(None, "--scheduler-wait", help="Seconds to try reconnecting to a --scheduler "
+                                       "that goes away (killed, its node rebooted) before stopping the run cleanly "
+                                       "(default 300)."),
     cluster: str = ClusterOpt,
     jobs: str = JobsOpt,
     job_cores: str = JobCoresOpt,
@@ -332,6 +350,8 @@ def run_cmd(
         values["order"] = "given"
     if store_wait is not None:
         values["store_wait"] = _seconds(store_wait, "--store-wait")
+    if scheduler_wait is not None:
+        values["scheduler_wait"] = _seconds(scheduler_wait, "--scheduler-wait")
     settings = Settings.from_dict(values)
     if sbatch is not None:
         _write_batch_script(sbatch, name or f"foldfarm-{shape_text}", spec)

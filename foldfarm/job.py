@@ -17,7 +17,7 @@ for SLURM (:mod:`foldfarm.slurm`) ``cluster`` (``"local"`` or ``"slurm"``),
 options); for a ``tls://`` scheduler ``tls_ca_file``, ``tls_cert``,
 ``tls_key``; and the run settings of :class:`foldfarm.run.Settings` (``task_seconds``,
 ``task_nodes``, ``tasks``, ``probes``, ``seed``, ``order``, ``window``,
-``max_attempts``, ``audit``, ``store_wait``).
+``max_attempts``, ``audit``, ``store_wait``, ``scheduler_wait``).
 """
 
 from __future__ import annotations
@@ -33,6 +33,7 @@ _TYPES = {
     "name": str, "shape": str, "store": str, "scheduler": str, "workers": int,
     "task_seconds": (int, float), "task_nodes": int, "tasks": int, "probes": int, "seed": int,
     "order": str, "window": int, "max_attempts": int, "audit": (int, float), "store_wait": (int, float),
+    "scheduler_wait": (int, float),
     "cluster": str, "jobs": (int, str), "job_cores": int, "job_memory": str, "walltime": str, "partition": str,
     "account": str, "job_directives": list, "tls_ca_file": str, "tls_cert": str, "tls_key": str,
 }

@@ -67,7 +67,7 @@ def retry_delay(tries: int, first: float = RETRY_FIRST, most: float = RETRY_MOST
 class Outage:
     """One stretch of time in which the store does not answer; decides how long to pause, and when to stop.
 
-    ``wait`` is the longest the outage may last, in seconds.
+    ``wait`` is the longest the outage may last, in seconds; ``most`` the longest pause between tries.
 
     >>> o = Outage(wait=10)
     >>> o.failed(100.0), o.failed(100.5), o.failed(101.5), o.failed(109.0), o.failed(110.0)
@@ -81,6 +81,7 @@ class Outage:
     wait: float
     began: float | None = None
     tries: int = 0
+    most: float = RETRY_MOST
 
     def failed(self, now: float) -> float | None:
         """A try failed at ``now``: seconds to pause before the next, or None when the wait is used up.
@@ -93,7 +94,7 @@ class Outage:
         left = self.began + self.wait - now
         if left <= 0:
             return None
-        return min(retry_delay(self.tries), left)
+        return min(retry_delay(self.tries, most=self.most), left)
 
     def over(self, now: float) -> float | None:
         """A try succeeded at ``now``: the outage's length in seconds if there was one (and it ends), else None."""

@@ -36,6 +36,12 @@ what has arrived, returns the rest to pending and says how to resume.
 A store that stops answering (a database restart) is waited for, up to the
 run's ``store_wait`` seconds, while the results that arrive are held
 (:mod:`foldfarm.outage`); past that the run stops as cleanly as on Ctrl-C.
+A scheduler that goes away (killed, its node rebooted) loses the tasks in
+flight only: they go back to pending, and the coordinator connects to the
+same address again for up to the run's ``scheduler_wait`` seconds, then
+submits them anew; past that, or when the scheduler was one of a cluster
+the coordinator started itself, the run stops as cleanly as on Ctrl-C
+(:mod:`foldfarm.reconnect`).
 
 Decisions (:class:`Dispatch`, :func:`classify_failure`, :func:`stale_lease`,
 :func:`needs_plan`, :func:`target_tasks`) are plain functions and a small
@@ -76,7 +82,8 @@ class Settings:
     target (0: choose from the cluster size); ``window`` is in-flight tasks
     per worker thread; ``store_wait`` is how long, in seconds, the
     coordinator waits for a store that stopped answering before it stops
-    the run (:mod:`foldfarm.outage`).
+    the run (:mod:`foldfarm.outage`), ``scheduler_wait`` how long it tries
+    to reach a Dask scheduler it lost (:mod:`foldfarm.reconnect`).
     """
 
     task_seconds: float = 120.0
@@ -89,6 +96,7 @@ class Settings:
     max_attempts: int = 3
     audit: float = 0.01
     store_wait: float = 300.0
+    scheduler_wait: float = 300.0
 
     @classmethod
     def from_dict(cls, data: dict) -> Settings:
@@ -228,6 +236,16 @@ class Dispatch:
     def busy(self) -> bool:
         return bool(self.flying or self.claimed)
 
+    def forget(self) -> int:
+        """Drop every claimed and flying task (the scheduler carrying them is gone); how many there were.
+
+        The caller returns them to pending in the store.
+        """
+        out = self.tasks_flying() + len(self.claimed)
+        self.flying.clear()
+        self.claimed.clear()
+        return out
+
     def should_flush(self, now: float, idle: bool) -> bool:
         """Record waiting results when there are many, they are old, or nothing else is going on."""
         if not self.done:
@@ -308,7 +326,7 @@ class Summary:
 
 
 class Stopped(Exception):
-    """The run stopped cleanly before its end (Ctrl-C, SIGTERM, a store gone for too long).
+    """The run stopped cleanly before its end (Ctrl-C, SIGTERM, a store or a scheduler gone for too long).
 
     Everything in flight went back to pending, or, if the store could not be
     reached, is still ``running`` there and goes back to pending on resume.
@@ -401,14 +419,18 @@ def drive(store, client, run_id: int, *, holder: str | None = None, take_over: b
     """Drive run ``run_id`` on ``client`` until nothing is open; record everything in ``store``.
 
     Raises :class:`Stopped` after a clean stop on Ctrl-C, or when the store
-    did not answer for the run's ``store_wait`` seconds.  ``on_notice``
-    receives the lines that say the store stopped answering and answers
-    again (default: standard error).  ``threads`` is the number of worker
+    did not answer for the run's ``store_wait`` seconds, or no scheduler for
+    its ``scheduler_wait`` seconds (:mod:`foldfarm.reconnect`: the
+    coordinator then works through a new client of its own, which it closes
+    before it returns; ``client`` is closed).  ``on_notice`` receives the
+    lines that say the store or the scheduler went away and came back
+    (default: standard error).  ``threads`` is the number of worker
     threads to keep busy when the cluster will have more than it has now
     (SLURM jobs still queued); the window is never planned for fewer than
     the cluster has.
     """
     from foldfarm.outage import PatientStore, StoreGone
+    from foldfarm.reconnect import SchedulerGone, SchedulerWait, reconnect, reconnectable, scheduler_lost
     from foldfarm.store import TaskResult
     from foldfarm.worker import ReadyWorker, work
 
@@ -424,6 +446,10 @@ def drive(store, client, run_id: int, *, holder: str | None = None, take_over: b
     store = PatientStore(raw, settings.store_wait, notice, holding=lambda: len(dispatch.done) if dispatch else 0)
     sides = tuple(int(p) for p in run.side_order.split("x") if int(p) > 1)
     take_lease(store, run_id, holder, force=take_over)
+    # Where to connect again if the scheduler is lost (None: a closed client), and whether it is ours.
+    address, security = (client.scheduler.address if client.scheduler is not None else None), client.security
+    own_cluster, made = client.cluster is not None, []  # made: clients of our own after a loss
+    _hush_dask_reconnect()
     try:
         client.register_plugin(ReadyWorker())  # workers load the kernel, now and when they join
         if needs_plan(run.state, sum(store.progress(run_id).tasks.values())):
@@ -436,18 +462,34 @@ def drive(store, client, run_id: int, *, holder: str | None = None, take_over: b
         futures: dict[Any, str] = {}  # future -> bundle key
         from distributed import as_completed
 
-        pool = as_completed([], with_results=True, raise_errors=False)  # results arrive with the futures
+        pool = as_completed([], loop=client.loop, with_results=True, raise_errors=False)  # results with the futures
         shown = time.monotonic()
         tally = Tally.start(store.progress(run_id), run.settings.get("estimated_nodes"))
+
+        lost = [False]  # the scheduler was seen lost: rejoin() before waiting on it again
+        rejoined = [0]  # connections made since: keys of a new connection never meet the old ones
 
         def submit(bundles: list[list[Task]]) -> None:
             """Send bundles of (task id, prefix, attempt) to the cluster in one graph update."""
             if not bundles:
                 return
-            keys = [f"foldfarm-{run_id}-{b[0][0]}-{b[0][2]}" for b in bundles]
-            futs = client.map(work, [sides] * len(bundles), [[p for _, p, _ in b] for b in bundles],
-                              [settings.task_nodes] * len(bundles), [settings.task_seconds] * len(bundles),
-                              tree=tree, pure=False, key=keys)
+            again = f"-r{rejoined[0]}" if rejoined[0] else ""
+            keys = [f"foldfarm-{run_id}-{b[0][0]}-{b[0][2]}{again}" for b in bundles]
+            try:
+                if scheduler_lost(client.status):
+                    futs = None  # a client that cannot send would keep the futures unsettled for ever
+                else:
+                    futs = client.map(work, [sides] * len(bundles), [[p for _, p, _ in b] for b in bundles],
+                                      [settings.task_nodes] * len(bundles), [settings.task_seconds] * len(bundles),
+                                      tree=tree, pure=False, key=keys)
+            except Exception as exc:
+                if not scheduler_lost(client.status, exc):
+                    raise
+                futs = None
+            if futs is None:
+                lost[0] = True  # the tasks stay claimed (running in the store) until rejoin() returns them
+                dispatch.claimed.extend((t, p) for b in bundles for t, p, _ in b)
+                return
             for fut, key, bundle in zip(futs, keys, bundles):
                 futures[fut] = key
                 dispatch.submitted(key, bundle)
@@ -495,17 +537,54 @@ def drive(store, client, run_id: int, *, holder: str | None = None, take_over: b
                 store.mark_running([t for t, _, _ in again])
                 submit([again])
 
+        def rejoin() -> None:
+            """The scheduler is lost: record what arrived, return the rest to pending, connect again or stop.
+
+            Raises :class:`SchedulerGone` when no scheduler answers within the
+            run's wait, or the lost one was of a cluster we started.
+            """
+            nonlocal client, pool
+            lost[0] = False
+            flush()
+            out = dispatch.forget()
+            store.reset_running(run_id)  # every task not recorded: claimed, in flight, or from a failed bundle
+            futures.clear()
+            pool.clear()
+            if not reconnectable(address, own_cluster):
+                started = "of the cluster foldfarm started " if own_cluster else ""
+                raise SchedulerGone(f"lost the Dask scheduler {started}({address or 'its client was closed'}); "
+                                    f"{out:,} tasks in flight went back to pending")
+            notice(f"foldfarm: lost the Dask scheduler at {address}; {out:,} tasks in flight went back to pending; "
+                   f"trying to reconnect for up to {settings.scheduler_wait:g} s")
+            _close_client(client)
+            client, lasted = reconnect(lambda: _client_again(address, security),
+                                       SchedulerWait(settings.scheduler_wait))
+            made.append(client)
+            rejoined[0] += 1
+            try:
+                client.register_plugin(ReadyWorker())  # workers of the new scheduler load the kernel first
+            except Exception as exc:
+                if not scheduler_lost(client.status, exc):
+                    raise
+                lost[0] = True  # gone again already: the loop comes back here
+            pool = as_completed([], loop=client.loop, with_results=True, raise_errors=False)
+            notice(f"foldfarm: the Dask scheduler at {address} answers again after {lasted:.0f} s; continuing")
+
         heart = Heartbeat(raw, run_id, holder)  # tries once a beat, never waits: the lease TTL leaves room
         try:
             refill()
             while dispatch.busy():
-                for fut, out in pool.next_batch(block=True):
+                for fut, out in _next_results(pool, client):
                     bundle = dispatch.answered(futures.pop(fut))
                     if fut.status == "finished":
                         for task, result in zip(bundle, out):
                             answered(task, result)
+                    elif scheduler_lost(client.status, out if isinstance(out, BaseException) else None):
+                        lost[0] = True  # its tasks go back to pending in rejoin()
                     else:
                         failed(bundle, out if isinstance(out, BaseException) else fut.exception())
+                if lost[0] or scheduler_lost(client.status):
+                    rejoin()
                 now = time.monotonic()
                 if dispatch.should_flush(now, idle=not dispatch.flying):
                     flush()
@@ -518,7 +597,7 @@ def drive(store, client, run_id: int, *, holder: str | None = None, take_over: b
         except KeyboardInterrupt:
             _stop(raw, client, run_id, futures, dispatch)
             raise Stopped(run_id) from None
-        except StoreGone as exc:
+        except (StoreGone, SchedulerGone) as exc:
             notice(f"foldfarm: {exc}; stopping run {run_id}")
             _stop(raw, client, run_id, futures, dispatch)
             raise Stopped(run_id) from None
@@ -527,6 +606,71 @@ def drive(store, client, run_id: int, *, holder: str | None = None, take_over: b
         return finish(store, run_id, started, client)
     finally:
         release_lease(raw, run_id, holder)
+        for own in made:
+            _close_client(own)
+
+
+def _next_results(pool, client, every: float = 0.1) -> list:
+    """The (future, result) pairs ready in ``pool``, waiting for the first; at once [] once the scheduler is lost.
+
+    Unlike ``pool.next_batch(block=True)``, which waits for ever on futures
+    that a closed client never settles, this looks at the client every
+    ``every`` seconds (as Dask's own iterator looks at its queue), and
+    returns [] on an empty pool.
+    """
+    from foldfarm.reconnect import scheduler_lost
+
+    while True:
+        batch = pool.next_batch(block=False)
+        if batch or pool.is_empty() or scheduler_lost(client.status):
+            return batch
+        with pool.thread_condition:  # a result put meanwhile is seen here; one put later wakes the wait
+            if not pool.has_ready():
+                pool.thread_condition.wait(every)
+
+
+def _client_again(address: str, security):
+    """A new client to the scheduler at ``address``: :class:`SchedulerError` (one line) while none answers there."""
+    identity = probe_scheduler(address, security=security)
+    with interrupts_held() as came:  # Dask cannot cut a client's start short cleanly
+        client, _ = connect(address, None, identity=identity, security=security)
+    if came:
+        _close_client(client)
+        raise KeyboardInterrupt
+    return client
+
+
+def _close_client(client) -> None:
+    """Close a client whose scheduler may be gone (Dask waits up to about 2 s for it); never raises."""
+    with interrupts_held():
+        try:
+            client.close()
+        except Exception:  # noqa: BLE001 - a client that cannot close cleanly is gone anyway
+            pass
+
+
+class _DaskReconnectLine:
+    """Drops Dask's lines about its own reconnect attempt: the coordinator says what it does instead.
+
+    Those are the line that it gave up, and the traceback of the attempt
+    cancelled when the coordinator closes the client to connect anew.
+    """
+
+    def filter(self, record) -> bool:
+        import asyncio
+
+        if record.exc_info and isinstance(record.exc_info[1], asyncio.CancelledError):
+            return False
+        return not record.getMessage().startswith("Failed to reconnect to scheduler")
+
+
+_DASK_RECONNECT_LINE = _DaskReconnectLine()
+
+
+def _hush_dask_reconnect() -> None:
+    import logging
+
+    logging.getLogger("distributed.client").addFilter(_DASK_RECONNECT_LINE)  # once: the same filter is added once
 
 
 def release_lease(store, run_id: int, holder: str) -> None:
@@ -730,8 +874,17 @@ def start_fork_server() -> bool:
 
 
 def disconnect(client, cluster) -> None:
-    """Close a client from :func:`connect`, and the local cluster if it started one (Ctrl-C meanwhile is ignored)."""
-    with interrupts_held():  # on the way out anyway
+    """Close a client from :func:`connect`, and the local cluster if it started one (Ctrl-C meanwhile is ignored).
+
+    A cluster whose scheduler is gone is closed without trying to reach it
+    for long (Dask's default is 30 s a connection).
+    """
+    import dask
+
+    from foldfarm.reconnect import scheduler_lost
+
+    lost = scheduler_lost(client.status)
+    with interrupts_held(), dask.config.set({"distributed.comm.timeouts.connect": "2s"} if lost else {}):
         client.close()
         if cluster is not None:
             cluster.close()
@@ -1012,6 +1165,7 @@ def scheduler_security(spec: ClusterSpec):
 def _quiet_logs(quiet: bool) -> None:
     import logging
 
+    _hush_dask_reconnect()  # a lost scheduler is the coordinator's to report, whenever it happens
     if quiet:
         for name in ("distributed", "distributed.nanny", "distributed.scheduler", "distributed.worker",
                      "distributed.deploy.adaptive", "dask_jobqueue"):
