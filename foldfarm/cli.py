@@ -820,7 +820,7 @@ def main() -> None:
     except clicks.UsageError as exc:
         typer.echo(f"foldfarm: {usage_line(exc)}", err=True)
         code = 2
-    except clicks.Abort:
+    except typer.Abort:  # (not in the exceptions module of the click that typer 0.29 carries)
         code = 130
     except KeyboardInterrupt:
         typer.echo("foldfarm: interrupted", err=True)

@@ -102,3 +102,19 @@ def test_run_prints_the_local_dashboard_and_what_its_graphs_need(tmp_path):
     assert first.startswith("dashboard: http://127.0.0.1:")
     hint = "(its graphs need bokeh: pip install 'foldfarm[dashboard]')"
     assert first.endswith(hint) == (importlib.util.find_spec("bokeh") is None), first
+
+
+def test_an_abort_from_typer_ends_with_exit_130_and_no_traceback(monkeypatch, capsys):
+    """typer raises Abort when a prompt or the terminal is closed under it; main() must know that exception."""
+    import typer
+
+    from foldfarm import cli
+
+    def aborted(**_):
+        raise typer.Abort()
+
+    monkeypatch.setattr(cli, "app", aborted)
+    with pytest.raises(SystemExit) as stop:
+        cli.main()
+    assert stop.value.code == 130
+    assert "Traceback" not in capsys.readouterr().err
