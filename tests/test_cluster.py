@@ -58,14 +58,16 @@ class Cluster:
             client.wait_for_workers(workers, timeout=60)
 
     def close(self) -> None:
-        for p in self.workers + [self.scheduler]:
-            if p.poll() is None:
-                p.terminate()
-        for p in self.workers + [self.scheduler]:
-            try:
-                p.wait(timeout=20)
-            except subprocess.TimeoutExpired:
-                p.kill()
+        for group in (self.workers, [self.scheduler]):  # workers first: without a scheduler they linger
+            for p in group:
+                if p.poll() is None:
+                    p.terminate()
+            for p in group:
+                try:
+                    p.wait(timeout=20)
+                except subprocess.TimeoutExpired:
+                    p.kill()
+                    p.wait()
 
 
 @pytest.fixture(scope="module")
