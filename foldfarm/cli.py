@@ -187,10 +187,12 @@ def _dashboard_hint(cluster) -> str:
 
 
 def _drive(store, run_id: int, spec, identity: dict | None, as_json: bool, quiet: bool, take_over: bool,
-           new_shape: str | None = None, settings=None, run_file: str | None = None) -> None:
+           new_shape: str | None = None, settings=None, run_file: str | None = None,
+           plan_only: bool = False) -> None:
     """Start or join the cluster of ``spec``, plan ``new_shape`` if given, drive the run; print the outcome.
 
-    With ``run_file``, the id of a new run is kept there as soon as it is planned.
+    With ``run_file``, the id of a new run is kept there as soon as it is planned.  With
+    ``plan_only``, stop once the plan is stored: print the run id and how to resume it.
     """
     import signal
 
@@ -220,11 +222,22 @@ def _drive(store, run_id: int, spec, identity: dict | None, as_json: bool, quiet
                     typer.echo(f"dashboard: {client.dashboard_link}{_dashboard_hint(cluster)}", err=True)
                 if new_shape is not None:
                     typer.echo(f"run {run_id}: {new_shape} planned in {store.display_url}", err=True)
+            if plan_only:
+                again = shlex.join(["foldfarm", "resume", str(run_id), "--store", store.display_url,
+                                    *runner.spec_arguments(spec)])
+                if as_json:
+                    emit_json({"run": run_id, "shape": new_shape, "state": "planned",
+                               "tasks": store.progress(run_id).tasks["pending"]})
+                else:
+                    typer.echo(run_id)
+                    typer.echo(f"run {run_id}: planned, not counted; count it with: {again}", err=True)
+                return
             show, live = _show_progress(quiet or as_json)
             with live if live is not None else nullcontext():
                 summary = runner.drive(store, client, run_id, holder=holder, take_over=take_over, on_progress=show,
                                        threads=threads)
-        except (runner.Stopped, KeyboardInterrupt):  # Ctrl-C in the loop, or before it began
+        except (runner.Stopped, KeyboardInterrupt) as exc:  # Ctrl-C in the loop, or before it began
+            run_id = run_id or getattr(exc, "run", 0)  # a run stopped while its plan was being stored
             if not run_id:
                 typer.echo("foldfarm: interrupted before the run was planned; nothing was stored", err=True)
             else:
@@ -297,6 +310,8 @@ def run_cmd(
                                  "already, resume that run instead (what a requeued batch job does)."),
     sbatch: str = typer.Option(None, "--sbatch", help="Write a batch script that runs this command as a SLURM job "
                                "that requeues itself before its walltime, and exit (then: sbatch FILE)."),
+    plan_only: bool = typer.Option(False, "--plan-only", help="Plan the run and store its tasks, then stop "
+                                   "without counting (print the run id; foldfarm resume RUN counts it)."),
     as_json: bool = JsonOpt,
     quiet: bool = QuietOpt,
 ) -> None:
@@ -347,7 +362,7 @@ def run_cmd(
             _drive(opened, known, spec, identity, as_json, quiet, False)
         else:
             _drive(opened, 0, spec, identity, as_json, quiet, False, new_shape=shape_text, settings=settings,
-                   run_file=run_file)
+                   run_file=run_file, plan_only=plan_only)
     finally:
         opened.close()
 
