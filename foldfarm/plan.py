@@ -89,8 +89,9 @@ def plan(tables: Tables, target_tasks: int, probes: int = DEFAULT_PROBES, seed: 
 
 #: Nodes of the coarse plan that :func:`pieces` divides a large target over.
 COARSE = 4096
-#: Knuth probes that estimate each coarse node's size before the target is shared out.
-COARSE_PROBES = 1024
+#: Knuth probes that estimate each coarse node's size before the target is shared out: four per
+#: task the node will get, within these bounds (a probe costs about a twentieth of a planned task).
+COARSE_PROBES = (64, 1024)
 #: Most tasks of one piece; a piece with a larger share is divided again.
 PIECE_LIMIT = 65536
 
@@ -110,7 +111,7 @@ def shares(sizes: list[float], target_tasks: int) -> list[int]:
     return [max(1, math.ceil(target_tasks * s / whole)) if s > 0 else 1 for s in sizes]
 
 
-def node_size(tables: Tables, steps: Steps, probes: int = COARSE_PROBES, seed: int = 0) -> float:
+def node_size(tables: Tables, steps: Steps, probes: int, seed: int = 0) -> float:
     """Estimated search nodes below ``steps`` (a legal node) from ``probes`` Knuth probes; 0 if it cannot be split.
 
     The probes' seed comes from ``seed`` and the node's text, so each node
@@ -129,8 +130,8 @@ def pieces(tables: Tables, target_tasks: int, probes: int = DEFAULT_PROBES, seed
     A target of at most ``coarse`` is one piece, ``root`` itself.  A larger
     one is a coarse plan of ``coarse`` nodes (:func:`grow`, the same
     largest-first rule) whose target is shared out in proportion to the
-    nodes' sizes (:func:`shares`), each estimated again with
-    :data:`COARSE_PROBES` probes (:func:`node_size`): the four probes a
+    nodes' sizes (:func:`shares`), each estimated again with up to 1,024
+    probes (:data:`COARSE_PROBES`, :func:`node_size`): the four probes a
     child gets in :func:`grow` are too few to decide how many tasks its
     whole subtree gets (on 5x5, 20,000 tasks in pieces of a 200-node coarse
     plan, the largest task had 970 times the mean nodes with them, 27 with
@@ -144,7 +145,9 @@ def pieces(tables: Tables, target_tasks: int, probes: int = DEFAULT_PROBES, seed
         yield root, target_tasks
         return
     frontier = [steps for steps, _ in grow(tables, coarse, probes, seed, root)]
-    sizes = [node_size(tables, steps, COARSE_PROBES, seed) for steps in frontier]
+    low, high = COARSE_PROBES
+    many = min(high, max(low, 4 * target_tasks // len(frontier)))
+    sizes = [node_size(tables, steps, many, seed) for steps in frontier]
     for steps, tasks in zip(frontier, shares(sizes, target_tasks)):
         if tasks > limit:
             yield from pieces(tables, tasks, probes, seed, steps, coarse=coarse, limit=limit)

@@ -67,7 +67,7 @@ HEARTBEAT_EVERY = 10.0
 #: Knuth probes behind the node estimate that the ETA counts down from.
 ETA_PROBES = 100_000
 #: Done results recorded per transaction, and the longest they wait for one.
-FLUSH_TASKS = 500
+FLUSH_TASKS = 1000
 FLUSH_SECONDS = 0.5
 
 
@@ -531,7 +531,7 @@ def drive(store, client, run_id: int, *, holder: str | None = None, take_over: b
             if not bundles:
                 return
             keys = [f"foldfarm-{run_id}-{b[0][0]}-{b[0][2]}" for b in bundles]
-            futs = client.map(work, [sides] * len(bundles), [[p for _, p, _ in b] for b in bundles],
+            futs = client.map(work, [sides] * len(bundles), ["\n".join(p for _, p, _ in b) for b in bundles],
                               [settings.task_nodes] * len(bundles), [settings.task_seconds] * len(bundles),
                               tree=tree, pure=False, key=keys)
             for fut, key, bundle in zip(futs, keys, bundles):

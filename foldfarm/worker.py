@@ -48,7 +48,7 @@ DASK_SETTINGS = {
 }
 
 
-def work(sides: tuple[int, ...], prefixes: list[str], task_nodes: int, task_seconds: float, *,
+def work(sides: tuple[int, ...], prefixes: list[str] | str, task_nodes: int, task_seconds: float, *,
          tree: int) -> list[dict]:
     """Count the subtrees below ``prefixes`` of the map with working sides ``sides``, searched on tree ``tree``.
 
@@ -58,13 +58,17 @@ def work(sides: tuple[int, ...], prefixes: list[str], task_nodes: int, task_seco
     (``task_nodes`` search nodes and ``task_seconds`` seconds, 0 for no
     bound).  Returns one plain dict per prefix: ``count`` (foldings),
     ``nodes``, ``seconds``, ``complete``, ``remainder`` (prefix texts) and
-    ``worker`` (this worker's address, None outside a worker).
+    ``worker`` (this worker's address, None outside a worker).  ``prefixes``
+    may come as one text, a prefix a line: Dask walks a list argument item
+    by item looking for futures (about 3 µs an item on the coordinator).
     """
     from foldfarm.kernel import count_below, tables_for
     from foldfarm.prefix import parse_prefix, prefix_text
 
     tables = tables_for(tuple(sides), tree)
     address = worker_address()
+    if isinstance(prefixes, str):
+        prefixes = prefixes.split("\n")
     results = []
     for prefix in prefixes:
         out = count_below(tables, parse_prefix(prefix), budget=task_nodes or None, seconds=task_seconds or None)
