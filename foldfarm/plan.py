@@ -149,7 +149,7 @@ def pieces(tables: Tables, target_tasks: int, probes: int = DEFAULT_PROBES, seed
     many = min(high, max(low, 4 * target_tasks // len(frontier)))
     sizes = [node_size(tables, steps, many, seed) for steps in frontier]
     for steps, tasks in zip(frontier, shares(sizes, target_tasks)):
-        if tasks > limit:
+        if tasks > limit and steps != root:  # a dead end is its own frontier: nothing to divide
             yield from pieces(tables, tasks, probes, seed, steps, coarse=coarse, limit=limit)
         else:
             yield steps, tasks
