@@ -469,7 +469,7 @@ def planned(sides: tuple[int, ...], settings: Settings, tree: int, client=None,
         pieces, nodes = plan_coarse(*coarse_args, tree=tree)
     else:
         pieces, nodes = client.submit(plan_coarse, *coarse_args, tree=tree, pure=False).result()
-    jobs = plan_jobs(pieces)
+    jobs = plan_jobs(pieces, PLAN_JOB_TASKS)
     del pieces
 
     def submit(job: list[tuple[str, int]]):
