@@ -2,6 +2,7 @@
 
     python3 benchmarks/scale.py [--sizes 1e5,1e6,1e7] [--backends sqlite,postgresql]
                                 [--shape 3x10] [--count-up-to 1e6] [--plan-shape 8x8] [--workers 2]
+                                [--skip verify,export]
 
 For each back end and size, every phase is one ``python3 -m foldfarm ...``
 command, as a researcher types it:
@@ -135,12 +136,15 @@ def measure(url: str, size: int, args, env: dict, folder: str) -> dict[str, Phas
             phases["run"].note = (f"{summary['count']} ({'= ' + expected[0].source if exact else 'NOT published'}), "
                                   f"{summary['tasks']:,} tasks, checks {'passed' if summary.get('passed') else 'FAILED'}")
             phases["run"].ok = exact and bool(summary.get("passed"))
-        phases["verify"], out = foldfarm(["verify", run, "--json", "--quiet", "--seed", "1", *workers, *store], env)
+        out = ""
+        if "verify" not in args.skip:
+            phases["verify"], out = foldfarm(["verify", run, "--json", "--quiet", "--seed", "1", *workers, *store],
+                                             env)
         if out.strip():
             checks = json.loads(out)
             failed = [name for name, c in checks.items() if isinstance(c, dict) and c.get("ok") is False]
             phases["verify"].note = "passed" if not failed else "FAILED: " + ", ".join(failed)
-    else:
+    elif "verify" not in args.skip:
         phases["verify"], out = foldfarm(["verify", run, "--json", "--quiet", "--audit", "0", *store], env)
         if out.strip():
             detail = json.loads(out).get("completeness", {}).get("detail", "")
@@ -150,6 +154,8 @@ def measure(url: str, size: int, args, env: dict, folder: str) -> dict[str, Phas
             phases["verify"].note = "covers the tree, no overlap" if not problems else "; ".join(problems)[:120]
     phases["status"], _ = foldfarm(["status", run, *store], env)
     phases["tasks"], _ = foldfarm(["tasks", run, "--limit", "20", "--sort", "count", *store], env)
+    if "export" in args.skip:
+        return phases
     export = os.path.join(folder, f"export-{size}.csv")
     phases["export"], _ = foldfarm(["export", run, "--format", "csv", "--output", export, *store], env)
     if os.path.exists(export):
@@ -205,7 +211,11 @@ def main() -> None:
     ap.add_argument("--count-up-to", type=float, default=1e6, help="larger sizes are planned and checked, not counted")
     ap.add_argument("--plan-shape", default="8x8", help="map planned (not counted) above --count-up-to")
     ap.add_argument("--workers", type=int, default=2)
+    ap.add_argument("--skip", default="", help="phases to leave out: verify, export (e.g. --skip verify,export)")
     ARGS = args = ap.parse_args()
+    args.skip = {p.strip() for p in args.skip.split(",") if p.strip()}
+    if args.skip - {"verify", "export"}:
+        raise SystemExit(f"--skip takes verify and export, not {args.skip!r}")
     sizes = sizes_of(args.sizes)
     env = {**os.environ, "PYTHONPATH": os.pathsep.join([os.path.dirname(os.path.dirname(os.path.abspath(__file__))),
                                                         os.environ.get("PYTHONPATH", "")])}
