@@ -133,8 +133,9 @@ def measure(url: str, size: int, args, env: dict, folder: str) -> dict[str, Phas
             summary = json.loads(out)
             expected = published(shape)
             exact = bool(expected) and summary["count"] == expected[0].count
+            verdict = "passed" if summary.get("passed") else "FAILED"
             phases["run"].note = (f"{summary['count']} ({'= ' + expected[0].source if exact else 'NOT published'}), "
-                                  f"{summary['tasks']:,} tasks, checks {'passed' if summary.get('passed') else 'FAILED'}")
+                                  f"{summary['tasks']:,} tasks, checks {verdict}")
             phases["run"].ok = exact and bool(summary.get("passed"))
         out = ""
         if "verify" not in args.skip:

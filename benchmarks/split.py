@@ -47,8 +47,9 @@ def spread(tables, tasks) -> str:
     nodes = np.array([kernel.count_below(tables, t).nodes for t in tasks], float)
     mean = nodes.mean()
     top = np.sort(nodes)[-max(1, len(nodes) // 100):].sum() / nodes.sum()
-    return (f"{len(tasks):>7,} tasks  largest {nodes.max() / mean:5.1f}x mean  p99 {np.percentile(nodes, 99) / mean:4.2f}x"
-            f"  p90 {np.percentile(nodes, 90) / mean:4.2f}x  largest 1% hold {100 * top:4.1f}% of the nodes")
+    p99, p90 = (np.percentile(nodes, q) / mean for q in (99, 90))
+    return (f"{len(tasks):>7,} tasks  largest {nodes.max() / mean:5.1f}x mean  p99 {p99:4.2f}x  p90 {p90:4.2f}x"
+            f"  largest 1% hold {100 * top:4.1f}% of the nodes")
 
 
 def main() -> None:

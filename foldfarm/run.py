@@ -52,9 +52,9 @@ import math
 import os
 import socket
 import time
+from collections.abc import Iterator
 from contextlib import contextmanager
 from dataclasses import asdict, dataclass, field
-from collections.abc import Iterator
 from typing import Any, Callable
 
 from foldfarm.errors import UserError
