@@ -187,10 +187,12 @@ def _dashboard_hint(cluster) -> str:
 
 
 def _drive(store, run_id: int, spec, identity: dict | None, as_json: bool, quiet: bool, take_over: bool,
-           new_shape: str | None = None, settings=None, run_file: str | None = None) -> None:
+           new_shape: str | None = None, settings=None, run_file: str | None = None,
+           plan_only: bool = False) -> None:
     """Start or join the cluster of ``spec``, plan ``new_shape`` if given, drive the run; print the outcome.
 
-    With ``run_file``, the id of a new run is kept there as soon as it is planned.
+    With ``run_file``, the id of a new run is kept there as soon as it is planned.  With
+    ``plan_only``, stop once the plan is stored: print the run id and how to resume it.
     """
     import signal
 
@@ -202,6 +204,10 @@ def _drive(store, run_id: int, spec, identity: dict | None, as_json: bool, quiet
     def terminate(signum, frame):  # a batch system's SIGTERM stops the run as cleanly as Ctrl-C
         raise KeyboardInterrupt
 
+    def resume_command() -> str:
+        return shlex.join(["foldfarm", "resume", str(run_id), "--store", store.display_url,
+                           *runner.spec_arguments(spec)])
+
     def stopped(why: str, say: bool = False) -> None:
         """Say how to go on from a clean stop (a run not planned yet has nothing to resume); exit 130.
 
@@ -212,9 +218,7 @@ def _drive(store, run_id: int, spec, identity: dict | None, as_json: bool, quiet
         else:
             if say:
                 typer.echo(f"foldfarm: {why}", err=True)
-            again = shlex.join(["foldfarm", "resume", str(run_id), "--store", store.display_url,
-                                *runner.spec_arguments(spec)])
-            typer.echo(f"foldfarm: stopped run {run_id}; resume with: {again}", err=True)
+            typer.echo(f"foldfarm: stopped run {run_id}; resume with: {resume_command()}", err=True)
         raise typer.Exit(130) from None
 
     signal.signal(signal.SIGTERM, terminate)
@@ -236,15 +240,25 @@ def _drive(store, run_id: int, spec, identity: dict | None, as_json: bool, quiet
                     typer.echo(f"dashboard: {client.dashboard_link}{_dashboard_hint(cluster)}", err=True)
                 if new_shape is not None:
                     typer.echo(f"run {run_id}: {new_shape} planned in {store.display_url}", err=True)
+            if plan_only:
+                if as_json:
+                    emit_json({"run": run_id, "shape": new_shape, "state": "planned",
+                               "tasks": store.progress(run_id).tasks["pending"]})
+                else:
+                    typer.echo(run_id)
+                    typer.echo(f"run {run_id}: planned, not counted; count it with: {resume_command()}", err=True)
+                return
             show, live = _show_progress(quiet or as_json)
             with live if live is not None else nullcontext():
                 summary = runner.drive(store, client, run_id, holder=holder, take_over=take_over, on_progress=show,
                                        threads=threads)
-        except (runner.Stopped, KeyboardInterrupt):  # Ctrl-C in the loop, or before it began
+        except (runner.Stopped, KeyboardInterrupt) as exc:  # Ctrl-C in the loop, or before it began
+            run_id = run_id or getattr(exc, "run", 0)  # a run stopped while its plan was being stored
             stopped("interrupted")
         except Exception as exc:  # the scheduler lost outside the loop that waits for it (planning, the checks)
             if client is None or not scheduler_lost(client.status, exc):
                 raise
+            run_id = run_id or getattr(exc, "run", 0)  # lost while the plan was being stored
             where = f" at {spec.scheduler}" if spec.scheduler else " of the cluster foldfarm started"
             stopped(f"lost the Dask scheduler{where}", say=True)
         finally:
@@ -315,6 +329,8 @@ def run_cmd(
                                  "already, resume that run instead (what a requeued batch job does)."),
     sbatch: str = typer.Option(None, "--sbatch", help="Write a batch script that runs this command as a SLURM job "
                                "that requeues itself before its walltime, and exit (then: sbatch FILE)."),
+    plan_only: bool = typer.Option(False, "--plan-only", help="Plan the run and store its tasks, then stop "
+                                   "without counting (print the run id; foldfarm resume RUN counts it)."),
     as_json: bool = JsonOpt,
     quiet: bool = QuietOpt,
 ) -> None:
@@ -367,7 +383,7 @@ def run_cmd(
             _drive(opened, known, spec, identity, as_json, quiet, False)
         else:
             _drive(opened, 0, spec, identity, as_json, quiet, False, new_shape=shape_text, settings=settings,
-                   run_file=run_file)
+                   run_file=run_file, plan_only=plan_only)
     finally:
         opened.close()
 

@@ -11,9 +11,11 @@ Dask's own state is disposable.
 
 Protocol
 --------
-1. *Plan*: a worker makes the plan (the coordinator never runs the
-   kernel itself when it has a cluster); create the run, then add the
-   planner's prefixes in one transaction.  A run whose plan never landed
+1. *Plan*: workers make the plan (the coordinator never runs the
+   kernel itself when it has a cluster): first its pieces and the size
+   estimate, then create the run, then add the tasks of the pieces in one
+   transaction as the workers send them, in order, a bounded number of
+   pieces out at once (:func:`planned`).  A run whose plan never landed
    (state ``planned``, no tasks) is planned again on resume; the plan is
    deterministic.
 2. *Dispatch*: keep at most :attr:`Settings.window` tasks per worker thread
@@ -51,10 +53,12 @@ thin loop that connects them to Dask and the store.
 
 from __future__ import annotations
 
+import itertools
 import math
 import os
 import socket
 import time
+from collections.abc import Iterator
 from contextlib import contextmanager
 from dataclasses import asdict, dataclass, field
 from typing import Any, Callable
@@ -69,7 +73,7 @@ HEARTBEAT_EVERY = 10.0
 #: Knuth probes behind the node estimate that the ETA counts down from.
 ETA_PROBES = 100_000
 #: Done results recorded per transaction, and the longest they wait for one.
-FLUSH_TASKS = 500
+FLUSH_TASKS = 1000
 FLUSH_SECONDS = 0.5
 
 
@@ -379,10 +383,17 @@ def create(store, shape_text: str, settings: Settings, threads: int, client=None
     shape = parse_shape(shape_text)
     sides = working_sides(shape, settings.order)
     settings = Settings.from_dict({**settings.to_dict(), "tasks": target_tasks(settings, threads)})
-    prefixes, nodes = planned(sides, settings, tree, client)
+    prefixes, nodes = planned(sides, settings, tree, client, threads)
     run_id = store.create_run(shape.text, "x".join(map(str, sides)) or "1",
                               {**settings.to_dict(), "tree": tree, "estimated_nodes": nodes})
-    store.add_tasks(run_id, prefixes)  # one transaction; if we die before it, resume plans again
+    try:  # one transaction, fed as the pieces arrive; if we die before it ends, resume plans again
+        store.add_tasks(run_id, prefixes)
+    except BaseException as exc:
+        prefixes.close()  # cancels the pieces still out
+        if isinstance(exc, KeyboardInterrupt):
+            raise Stopped(run_id) from None
+        exc.run = run_id  # the caller names the run to resume (planned again), as Stopped does
+        raise
     return run_id
 
 
@@ -399,18 +410,95 @@ def recounter(store, client):
     return recount
 
 
-def planned(sides: tuple[int, ...], settings: Settings, tree: int, client=None) -> tuple[list[str], float]:
-    """The deterministic plan of a run on tree ``tree`` (prefix texts) and a quick estimate of its search nodes.
+#: Tasks a worker plans in one Dask task (a few pieces of the plan, a few megabytes of prefixes).
+PLAN_JOB_TASKS = 20_000
+#: Dask tasks of planning out at once, per worker thread.
+PLAN_JOBS_PER_THREAD = 2
 
-    Made on a worker of ``client`` when there is one, where the kernel is
-    loaded already (this process then never loads it), else here.
+
+def plan_jobs(pieces: list[tuple[str, int]], job_tasks: int = PLAN_JOB_TASKS) -> list[list[tuple[str, int]]]:
+    """Consecutive pieces of a plan grouped into jobs of about ``job_tasks`` tasks (in order; none empty).
+
+    >>> plan_jobs([("/1", 5), ("/2", 5), ("/3", 12), ("/4", 1)], job_tasks=10)
+    [[('/1', 5), ('/2', 5)], [('/3', 12)], [('/4', 1)]]
     """
-    from foldfarm.worker import plan_tasks
+    jobs: list[list[tuple[str, int]]] = []
+    load = job_tasks
+    for piece in pieces:
+        if load >= job_tasks:
+            jobs.append([])
+            load = 0
+        jobs[-1].append(piece)
+        load += piece[1]
+    return jobs
 
-    args = (sides, settings.tasks, settings.probes, settings.seed, ETA_PROBES)
+
+def in_order(jobs: list, submit: Callable[[Any], Any], inflight: int) -> Iterator[str]:
+    """Yield every prefix of every job, job after job, with at most ``inflight`` jobs submitted ahead.
+
+    ``submit(job)`` starts a job and returns something whose ``result()``
+    is its list of prefixes (a Dask future).  Only the jobs out and the
+    one being yielded are held, so the coordinator's memory is bounded by
+    ``inflight`` whatever the size of the plan.  Closing the generator
+    early cancels the jobs still out (those with a ``cancel``).
+    """
+    from collections import deque
+
+    out: deque = deque()
+    waiting = iter(jobs)
+    try:
+        for job in itertools.islice(waiting, max(1, inflight)):
+            out.append(submit(job))
+        while out:
+            prefixes = out.popleft().result()
+            for job in itertools.islice(waiting, 1):
+                out.append(submit(job))
+            yield from prefixes
+    finally:
+        for job in out:
+            if hasattr(job, "cancel"):
+                job.cancel()
+
+
+class _Ready:
+    """A job computed in this process, with a future's ``result()``."""
+
+    def __init__(self, fn: Callable[[], Any]):
+        self._fn = fn
+
+    def result(self) -> Any:
+        return self._fn()
+
+
+def planned(sides: tuple[int, ...], settings: Settings, tree: int, client=None,
+            threads: int = 1) -> tuple[Iterator[str], float]:
+    """The deterministic plan of a run on tree ``tree`` (a generator of prefix texts, sorted) and its search size.
+
+    The pieces of the plan (:func:`foldfarm.worker.plan_coarse`) are made
+    at once, the estimate of the search nodes with them; the tasks of each
+    piece as the generator is consumed, :data:`PLAN_JOB_TASKS` at a time
+    on the workers of ``client``, up to :data:`PLAN_JOBS_PER_THREAD` jobs a
+    worker thread ahead (of ``threads``), where the kernel is loaded (this
+    process then never loads it); else here, one job at a time.  Feed the
+    generator to :meth:`foldfarm.store.Store.add_tasks`: the plan lands in
+    one transaction, with a bounded part of it in memory at any time.
+    """
+    from foldfarm.worker import plan_coarse, plan_pieces
+
+    coarse_args = (sides, settings.tasks, settings.probes, settings.seed, ETA_PROBES)
     if client is None:
-        return plan_tasks(*args, tree=tree)
-    return client.submit(plan_tasks, *args, tree=tree, pure=False).result()
+        pieces, nodes = plan_coarse(*coarse_args, tree=tree)
+    else:
+        pieces, nodes = client.submit(plan_coarse, *coarse_args, tree=tree, pure=False).result()
+    jobs = plan_jobs(pieces, PLAN_JOB_TASKS)
+    del pieces
+
+    def submit(job: list[tuple[str, int]]):
+        if client is None:
+            return _Ready(lambda: plan_pieces(sides, job, settings.probes, settings.seed, tree=tree))
+        return client.submit(plan_pieces, sides, job, settings.probes, settings.seed, tree=tree, pure=False)
+
+    return in_order(jobs, submit, PLAN_JOBS_PER_THREAD * max(1, threads)), nodes
 
 
 def drive(store, client, run_id: int, *, holder: str | None = None, take_over: bool = False,
@@ -453,7 +541,8 @@ def drive(store, client, run_id: int, *, holder: str | None = None, take_over: b
     try:
         client.register_plugin(ReadyWorker())  # workers load the kernel, now and when they join
         if needs_plan(run.state, sum(store.progress(run_id).tasks.values())):
-            store.add_tasks(run_id, planned(sides, settings, tree, client)[0])
+            threads = max(1, threads or 0, sum(client.nthreads().values()))
+            store.add_tasks(run_id, planned(sides, settings, tree, client, threads)[0])
         store.reset_running(run_id, failed=True)
         if run.state != "running":
             store.set_run_state(run_id, "running")
@@ -479,7 +568,7 @@ def drive(store, client, run_id: int, *, holder: str | None = None, take_over: b
                 if scheduler_lost(client.status):
                     futs = None  # a client that cannot send would keep the futures unsettled for ever
                 else:
-                    futs = client.map(work, [sides] * len(bundles), [[p for _, p, _ in b] for b in bundles],
+                    futs = client.map(work, [sides] * len(bundles), ["\n".join(p for _, p, _ in b) for b in bundles],
                                       [settings.task_nodes] * len(bundles), [settings.task_seconds] * len(bundles),
                                       tree=tree, pure=False, key=keys)
             except Exception as exc:

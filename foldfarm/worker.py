@@ -3,8 +3,8 @@
 :func:`work` counts prefix tasks within a budget and returns plain dicts;
 it is what the coordinator (:mod:`foldfarm.run`) submits, and what the
 audit (:mod:`foldfarm.check`) submits again on another worker.
-:func:`plan_tasks` (the plan of a new run) and :func:`children` (the tree
-the completeness check walks) are the coordinator's other uses of the
+:func:`plan_coarse` and :func:`plan_pieces` (the plan of a new run, in
+pieces) and :func:`children` (the tree the completeness check walks) are the coordinator's other uses of the
 kernel: given a cluster it sends them to a worker, so the coordinator
 itself never loads numba (about 0.6 s of CPU at start-up, the compiler's
 memory, and on a cluster's login node a compile of its own).  Without a
@@ -48,7 +48,7 @@ DASK_SETTINGS = {
 }
 
 
-def work(sides: tuple[int, ...], prefixes: list[str], task_nodes: int, task_seconds: float, *,
+def work(sides: tuple[int, ...], prefixes: list[str] | str, task_nodes: int, task_seconds: float, *,
          tree: int) -> list[dict]:
     """Count the subtrees below ``prefixes`` of the map with working sides ``sides``, searched on tree ``tree``.
 
@@ -58,13 +58,17 @@ def work(sides: tuple[int, ...], prefixes: list[str], task_nodes: int, task_seco
     (``task_nodes`` search nodes and ``task_seconds`` seconds, 0 for no
     bound).  Returns one plain dict per prefix: ``count`` (foldings),
     ``nodes``, ``seconds``, ``complete``, ``remainder`` (prefix texts) and
-    ``worker`` (this worker's address, None outside a worker).
+    ``worker`` (this worker's address, None outside a worker).  ``prefixes``
+    may come as one text, a prefix a line: Dask walks a list argument item
+    by item looking for futures (about 3 µs an item on the coordinator).
     """
     from foldfarm.kernel import count_below, tables_for
     from foldfarm.prefix import parse_prefix, prefix_text
 
     tables = tables_for(tuple(sides), tree)
     address = worker_address()
+    if isinstance(prefixes, str):
+        prefixes = prefixes.split("\n")
     results = []
     for prefix in prefixes:
         out = count_below(tables, parse_prefix(prefix), budget=task_nodes or None, seconds=task_seconds or None)
@@ -79,22 +83,35 @@ def work(sides: tuple[int, ...], prefixes: list[str], task_nodes: int, task_seco
     return results
 
 
-def plan_tasks(sides: tuple[int, ...], target: int, probes: int, seed: int,
-               eta_probes: int, *, tree: int) -> tuple[list[str], float]:
-    """The planner's prefixes (texts) for the map with working sides ``sides`` on tree ``tree``, and its search size.
+def plan_coarse(sides: tuple[int, ...], target: int, probes: int, seed: int,
+                eta_probes: int, *, tree: int) -> tuple[list[tuple[str, int]], float]:
+    """The pieces of a run's plan (:func:`foldfarm.plan.pieces`: prefix text, tasks) and its search size.
 
-    The size is a quick Knuth estimate of the nodes in the whole search
-    tree (``eta_probes`` probes; 0 for a single cell), for progress ETAs.
-    Runs on a worker, where the kernel is loaded, or in the coordinator.
+    For the map with working sides ``sides`` on tree ``tree``.  The size is
+    a quick Knuth estimate of the nodes in the whole search tree
+    (``eta_probes`` probes; 0 for a single cell), for progress ETAs.  Runs
+    on a worker, where the kernel is loaded, or in the coordinator.
     """
     from foldfarm.estimate import estimate
     from foldfarm.kernel import tables_for
-    from foldfarm.plan import plan
+    from foldfarm.plan import pieces
     from foldfarm.prefix import prefix_text
 
     tables = tables_for(tuple(sides), tree)
     nodes = estimate(tables, eta_probes, seed).nodes if tables.n > 1 else 0.0
-    return [prefix_text(p) for p in plan(tables, target, probes, seed)], nodes
+    return [(prefix_text(root), tasks) for root, tasks in pieces(tables, target, probes, seed)], nodes
+
+
+def plan_pieces(sides: tuple[int, ...], pieces: list[tuple[str, int]], probes: int, seed: int, *,
+                tree: int) -> list[str]:
+    """The tasks (prefix texts, sorted) of consecutive pieces of a plan (:func:`plan_coarse`), one after another."""
+    from foldfarm.kernel import tables_for
+    from foldfarm.plan import plan_piece
+    from foldfarm.prefix import parse_prefix, prefix_text
+
+    tables = tables_for(tuple(sides), tree)
+    return [prefix_text(steps) for root, tasks in pieces
+            for steps in plan_piece(tables, parse_prefix(root), tasks, probes, seed)]
 
 
 def children(sides: tuple[int, ...], nodes: list[tuple[int, ...]], trusted: list[bool], *,

@@ -8,7 +8,7 @@ from hypothesis import strategies as st
 
 from foldfarm.job import JobError, is_job_file, load_job
 from foldfarm.run import (BUNDLE_MAX, Dispatch, Settings, Tally, bundle_size, classify_failure, eta_seconds,
-                          needs_plan, stale_lease, target_tasks)
+                          in_order, needs_plan, plan_jobs, stale_lease, target_tasks)
 from foldfarm.store import Progress
 
 
@@ -34,6 +34,45 @@ def test_plan_is_stored_again_only_when_it_never_landed():
     assert needs_plan("planned", 0)
     assert not needs_plan("planned", 10)
     assert not needs_plan("running", 0)
+
+
+class FakeJob:
+    """A planning job with a future's result() and cancel(), logging what the coordinator does."""
+
+    def __init__(self, job, log):
+        self.job, self.log = job, log
+        log.append(("submit", job[0][0]))
+
+    def result(self):
+        self.log.append(("result", self.job[0][0]))
+        return [f"{root}/{i + 1}" for root, n in self.job for i in range(n)]
+
+    def cancel(self):
+        self.log.append(("cancel", self.job[0][0]))
+
+
+@given(st.lists(st.integers(1, 30), min_size=1, max_size=40), st.integers(1, 100), st.integers(1, 6))
+def test_plan_jobs_stream_in_order_with_few_out(sizes, job_tasks, inflight):
+    pieces = [(f"/{i + 1}", n) for i, n in enumerate(sizes)]
+    jobs = plan_jobs(pieces, job_tasks)
+    assert [p for job in jobs for p in job] == pieces and all(jobs)
+    assert all(sum(n for _, n in job[:-1]) < job_tasks for job in jobs)  # a job closes once it has enough
+    log = []
+    got = list(in_order(jobs, lambda job: FakeJob(job, log), inflight))
+    assert got == [f"{root}/{i + 1}" for root, n in pieces for i in range(n)]
+    out = 0
+    for event, _ in log:  # never more than `inflight` jobs submitted and not yet taken
+        out += 1 if event == "submit" else -1
+        assert 0 <= out <= inflight
+
+
+def test_plan_stream_closed_early_cancels_what_is_out():
+    log = []
+    jobs = plan_jobs([(f"/{i + 1}", 2) for i in range(10)], job_tasks=2)
+    stream = in_order(jobs, lambda job: FakeJob(job, log), 3)
+    assert next(stream) == "/1/1"
+    stream.close()
+    assert [e for e in log if e[0] == "cancel"] == [("cancel", "/2"), ("cancel", "/3"), ("cancel", "/4")]
 
 
 def test_target_tasks():
