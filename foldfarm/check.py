@@ -800,6 +800,67 @@ def audit_outcome(audited: int, fraction: float, seed: int, mismatches: list[dic
                          f"(verify again): {_listed(errors)}", **extra)
 
 
+#: Sampled tasks counted again in one Dask task, and such bundles out at once per worker: a sample is 1% of
+#: a run's tasks (100,000 of 10^7), which must neither wait on a Dask task each nor all be out at once.
+AUDIT_BUNDLE = 64
+AUDIT_OUT_PER_WORKER = 4
+
+
+def audit_bundles(chosen: list[str], size: int = AUDIT_BUNDLE) -> list[tuple[str, list[int]]]:
+    """Positions in the sample grouped by the worker chosen to recount them, at most ``size`` a group, in order.
+
+    >>> audit_bundles(["a", "b", "a", "a", "b"], size=2)
+    [('a', [0, 2]), ('b', [1, 4]), ('a', [3])]
+    """
+    open_: dict[str, list[int]] = {}
+    bundles: list[tuple[str, list[int]]] = []
+    for i, worker in enumerate(chosen):
+        group = open_.get(worker)
+        if group is None or len(group) == size:
+            group = open_[worker] = []
+            bundles.append((worker, group))
+        group.append(i)
+    return bundles
+
+
+def _second_counts(client, sides: tuple[int, ...], tree: int, sample: list, chosen: list[str]):
+    """Yield ``(position in the sample, result or exception)`` of every sampled task counted again on its worker.
+
+    Bundles of :data:`AUDIT_BUNDLE` go out in order, at most
+    :data:`AUDIT_OUT_PER_WORKER` per worker at once.
+    """
+    from distributed import as_completed
+
+    from foldfarm.worker import work
+
+    bundles = iter(audit_bundles(chosen))
+    limit = AUDIT_OUT_PER_WORKER * len(set(chosen))
+    out = as_completed()
+    what = {}
+
+    def send() -> bool:
+        worker, positions = next(bundles, (None, None))
+        if worker is None:
+            return False
+        future = client.submit(work, sides, "\n".join(sample[i].prefix for i in positions), 0, 0, tree=tree,
+                               workers=[worker], allow_other_workers=False, pure=False)
+        what[future] = positions
+        out.add(future)
+        return True
+
+    while len(what) < limit and send():
+        pass
+    for future in out:
+        positions = what.pop(future)
+        try:
+            results = future.result()
+        except Exception as exc:  # a lost worker: these tasks are not confirmed
+            results = [exc] * len(positions)
+        future.release()
+        yield from zip(positions, results)
+        send()
+
+
 def _audit(store, sides: tuple[int, ...], tree: int, sample: list, client, fraction: float, seed: int) -> dict:
     """Count each sampled done task again (on the run's tree) on another worker; on a mismatch a third time."""
     from foldfarm.worker import work
@@ -808,16 +869,12 @@ def _audit(store, sides: tuple[int, ...], tree: int, sample: list, client, fract
     if not workers:
         return outcome(None, "skipped: the cluster has no workers", audited=0, fraction=fraction, seed=seed)
     chosen = [pick_worker(workers, [row.worker], i) or workers[i % len(workers)] for i, row in enumerate(sample)]
-    futures = [client.submit(work, sides, [row.prefix], 0, 0, tree=tree, workers=[w], allow_other_workers=False,
-                             pure=False)
-               for row, w in zip(sample, chosen)]
     mismatches, errors = [], []
-    for row, worker, future in zip(sample, chosen, futures):
-        try:
-            second = future.result()[0]
-        except Exception as exc:  # a lost worker: the task is not confirmed, say so
-            why = (str(exc).strip().splitlines() or [type(exc).__name__])[0]
-            errors.append(f"task {row.id} ({row.prefix}) could not be counted again on {worker}: {why}")
+    for i, second in _second_counts(client, sides, tree, sample, chosen):
+        row, worker = sample[i], chosen[i]
+        if isinstance(second, Exception):  # a lost worker: the task is not confirmed, say so
+            why = (str(second).strip().splitlines() or [type(second).__name__])[0]
+            errors.append((i, f"task {row.id} ({row.prefix}) could not be counted again on {worker}: {why}"))
             continue
         by = second["worker"] or worker
         if store.record_audit(row.id, second["count"], nodes=second["nodes"], seconds=second["seconds"], worker=by):
@@ -836,14 +893,15 @@ def _audit(store, sides: tuple[int, ...], tree: int, sample: list, client, fract
         store.record_audit(row.id, third["count"], nodes=third["nodes"], seconds=third["seconds"],
                            worker=third["worker"] or third_worker)
         verdict = judge_audit(int(row.count), second["count"], third["count"])
-        mismatches.append({
+        mismatches.append((i, {
             "task": row.id, "prefix": row.prefix, "recorded": int(row.count), "recorded_by": row.worker,
             "audit": second["count"], "audited_by": by, "third": third["count"], "third_by": third_by,
             "verdict": verdict,
             "disagreeing_worker": {"first": row.worker, "second": by}.get(verdict),
-        })
+        }))
     same = sum(1 for row, w in zip(sample, chosen) if w == row.worker)
-    return audit_outcome(len(sample), fraction, seed, mismatches, errors, same)
+    in_order = [m for _, m in sorted(mismatches, key=lambda im: im[0])]  # as the sample, whichever came back first
+    return audit_outcome(len(sample), fraction, seed, in_order, [e for _, e in sorted(errors)], same)
 
 
 # --------------------------------------------------------------------------

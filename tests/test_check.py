@@ -753,3 +753,11 @@ def test_a_run_on_a_tree_this_version_does_not_know_is_refused_in_one_line(tmp_p
     assert out.returncode == 2 and len(lines) == 1 and "search tree 9" in lines[0], out.stderr
     with Store(url) as store:
         assert store.get_run(run_id).state == "planned" and store.progress(run_id).tasks["pending"] == 1
+
+
+@given(st.lists(st.sampled_from(["tcp://a", "tcp://b", "tcp://c"]), max_size=300), st.integers(1, 70))
+def test_audit_bundles_send_every_sampled_task_once_to_its_chosen_worker(chosen, size):
+    bundles = check.audit_bundles(chosen, size)
+    positions = [i for _, group in bundles for i in group]
+    assert sorted(positions) == list(range(len(chosen)))
+    assert all(0 < len(group) <= size and all(chosen[i] == worker for i in group) for worker, group in bundles)

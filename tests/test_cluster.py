@@ -58,16 +58,21 @@ class Cluster:
             client.wait_for_workers(workers, timeout=60)
 
     def close(self) -> None:
-        for group in (self.workers, [self.scheduler]):  # workers first: without a scheduler they linger
-            for p in group:
-                if p.poll() is None:
-                    p.terminate()
-            for p in group:
-                try:
-                    p.wait(timeout=20)
-                except subprocess.TimeoutExpired:
-                    p.kill()
-                    p.wait()
+        stop_processes(self.workers, self.scheduler)
+
+
+def stop_processes(workers: list[subprocess.Popen], scheduler: subprocess.Popen, timeout: float = 20) -> None:
+    """Stop Dask workers, then their scheduler (workers without a scheduler linger); kill what outlives ``timeout``."""
+    for group in (workers, [scheduler]):
+        for p in group:
+            if p.poll() is None:
+                p.terminate()
+        for p in group:
+            try:
+                p.wait(timeout=timeout)
+            except subprocess.TimeoutExpired:
+                p.kill()
+                p.wait()
 
 
 @pytest.fixture(scope="module")

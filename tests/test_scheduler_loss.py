@@ -18,7 +18,7 @@ import time
 
 import pytest
 from test_cluster import (DASK, LONG, LONG_COUNT, LONG_TASK_NODES, WORKER, assert_partition, foldfarm, snapshot,
-                          start, wait_for_done)
+                          start, stop_processes, wait_for_done)
 
 from foldfarm.errors import UserError
 from foldfarm.reconnect import (LOST_REASON, SchedulerGone, SchedulerWait, reconnect, reconnectable,
@@ -199,16 +199,7 @@ class Scheduler:
         self.scheduler.wait()
 
     def close(self) -> None:
-        for group in (self.workers, [self.scheduler]):  # workers first: without a scheduler they linger
-            for p in group:
-                if p.poll() is None:
-                    p.terminate()
-            for p in group:
-                try:
-                    p.wait(timeout=10)
-                except subprocess.TimeoutExpired:
-                    p.kill()
-                    p.wait()
+        stop_processes(self.workers, self.scheduler, timeout=10)
 
 
 @pytest.fixture
