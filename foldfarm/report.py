@@ -189,12 +189,13 @@ def task_lines(tasks: list[TaskRecord]) -> list[str]:
     if not tasks:
         return ["no tasks match"]
     width = max(8, max(len(t.prefix) for t in tasks))
-    out = [f"{'id':>8}  {'prefix':<{width}}  {'state':<7} {'count':>20} {'nodes':>14} {'seconds':>9}  worker"]
+    wide = max(2, max(len(str(t.id)) for t in tasks))  # a run's ids start at run x 10^10 (store schema 2)
+    out = [f"{'id':>{wide}}  {'prefix':<{width}}  {'state':<7} {'count':>20} {'nodes':>14} {'seconds':>9}  worker"]
     for t in tasks:
         count = "" if t.count is None else str(t.count)
         nodes = "" if t.nodes is None else f"{t.nodes:,}"
         seconds = "" if t.seconds is None else f"{t.seconds:.3f}"
-        out.append(f"{t.id:>8}  {t.prefix:<{width}}  {t.state:<7} {count:>20} {nodes:>14} {seconds:>9}  "
+        out.append(f"{t.id:>{wide}}  {t.prefix:<{width}}  {t.state:<7} {count:>20} {nodes:>14} {seconds:>9}  "
                    f"{t.worker or ''}")
     return out
 

@@ -241,3 +241,16 @@ def test_sweep_counts_a_family_beside_the_published_values(tmp_path):
     assert len(lines) == 6 and all("same (OEIS" in line and "A001415" in line for line in lines[1:])
     runs = json.loads(foldfarm("status", "--store", url, "--json").stdout)["runs"]
     assert len(runs) == 5  # the second sweep re-used the runs
+
+
+def test_the_task_table_keeps_its_columns_under_their_headings_with_long_ids():
+    """Schema 2 numbers run r's tasks from r x 10^10: the id column widens to the widest id."""
+    when = datetime(2026, 12, 3)
+    tasks = [TaskRecord(30000000012, "/1/2", "done", 48, 900, 0.5, 1, "tcp://127.0.0.1:1", None, 2, None, when,
+                        when, when),
+             TaskRecord(7, "/3", "pending", None, None, None, 0, None, None, 1, None, when, None, None)]
+    header, *rows = report.task_lines(tasks)
+    for heading in ("prefix", "state", "worker"):
+        column = header.index(heading)
+        assert rows[0][column - 1] == " " and rows[0][column] != " ", (heading, header, rows[0])
+    assert header.index("id") + 2 == len(str(tasks[0].id)) == rows[1].index("7") + 1
