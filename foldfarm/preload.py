@@ -25,8 +25,26 @@ import signal
 # preload).  Without this each worker died with a KeyboardInterrupt traceback on the terminal.
 signal.signal(signal.SIGINT, signal.SIG_IGN)
 
+class _HeartbeatToAClosedScheduler:
+    """Drops a worker's "failed to communicate with scheduler during heartbeat" traceback.
+
+    The coordinator closes its local cluster when a run ends or stops; a
+    heartbeat already on its way then meets a closed scheduler, and Dask
+    logged that as an error with a traceback on the terminal the run was
+    stopped from.  A scheduler lost mid-run is the coordinator's to report
+    (:mod:`foldfarm.reconnect`), in one line.
+    """
+
+    def filter(self, record) -> bool:
+        return not record.getMessage().startswith("Failed to communicate with scheduler during heartbeat")
+
+
 try:
+    import logging
+
     import distributed  # noqa: F401  (what the worker processes run)
+
+    logging.getLogger("distributed.worker").addFilter(_HeartbeatToAClosedScheduler())
 
     from foldfarm.worker import warm_worker
 

@@ -67,6 +67,7 @@ def test_work_needs_the_runs_tree():
 
 
 def _worker_state(dask_worker) -> dict:
+    import logging
     import sys
 
     from foldfarm import kernel
@@ -74,6 +75,10 @@ def _worker_state(dask_worker) -> dict:
     return {
         "forked from the preloaded server": "foldfarm.preload" in sys.modules,
         "kernel loaded": bool(kernel._search.signatures) and bool(kernel._replay.signatures),
+        "heartbeat errors hushed": not logging.getLogger("distributed.worker").filter(logging.makeLogRecord(
+            {"msg": "Failed to communicate with scheduler during heartbeat.", "levelno": logging.ERROR})),
+        "other errors shown": bool(logging.getLogger("distributed.worker").filter(logging.makeLogRecord(
+            {"msg": "Compute Failed", "levelno": logging.ERROR}))),
         "periodic ms": {k: v.callback_time for k, v in dask_worker.periodic_callbacks.items()},
     }
 
@@ -95,6 +100,9 @@ def test_local_workers_start_with_the_kernel_loaded_and_quiet_settings():
     for state in states.values():
         assert state["forked from the preloaded server"] == runner.start_fork_server()
         assert state["kernel loaded"]
+        # A heartbeat in flight when the coordinator closes its cluster would print a traceback on the terminal.
+        assert state["heartbeat errors hushed"] == state["forked from the preloaded server"]
+        assert state["other errors shown"]
         assert "profile" not in state["periodic ms"]  # distributed.worker.profile.enabled: False
     # The settings of DASK_SETTINGS, in milliseconds, as each server scheduled its bookkeeping.
     for periodic in [scheduler, *nannies, *(s["periodic ms"] for s in states.values())]:
