@@ -917,10 +917,24 @@ def connect(scheduler: str | None, workers: int | None, quiet: bool = True, iden
                                dashboard_address="127.0.0.1:0", plugins={ReadyWorker()},
                                silence_logs=logging.ERROR if quiet else logging.WARNING)
         client = Client(cluster)
+    _without_gc_callback()
     if came:  # Ctrl-C while it started: stop now that it can be closed cleanly
         disconnect(client, cluster)
         raise KeyboardInterrupt
     return client, cluster
+
+
+def _without_gc_callback() -> None:
+    """Remove the garbage-collector callback that a Dask scheduler in this process installs.
+
+    A Ctrl-C whose KeyboardInterrupt is raised while that callback runs is
+    lost: Python reports an exception in a collector callback as "ignored"
+    and goes on, and the run went on counting (seen on a busy machine).  The
+    callback only times collections for Dask's warnings about long pauses.
+    """
+    from distributed.gc import disable_gc_diagnosis
+
+    disable_gc_diagnosis(force=True)
 
 
 def local_workers(workers: int | None) -> int:
@@ -1225,6 +1239,7 @@ def open_cluster(spec: ClusterSpec, quiet: bool = True, identity: dict | None = 
         with interrupts_held() as came:
             cluster, threads = slurm.start(spec.slurm, DASK_SETTINGS)
             client = Client(cluster)
+        _without_gc_callback()
         if came:  # Ctrl-C while it started: stop now that it can be closed cleanly
             disconnect(client, cluster)
             raise KeyboardInterrupt
