@@ -386,15 +386,26 @@ def create(store, shape_text: str, settings: Settings, threads: int, client=None
     prefixes, nodes = planned(sides, settings, tree, client, threads)
     run_id = store.create_run(shape.text, "x".join(map(str, sides)) or "1",
                               {**settings.to_dict(), "tree": tree, "estimated_nodes": nodes})
-    try:  # one transaction, fed as the pieces arrive; if we die before it ends, resume plans again
+    store_plan(store, run_id, prefixes)
+    return run_id
+
+
+def store_plan(store, run_id: int, prefixes: Iterator[str]) -> None:
+    """Add the plan of run ``run_id`` (a generator from :func:`planned`) in one transaction, fed as pieces arrive.
+
+    If it ends early, the run keeps no task and ``resume`` plans it again:
+    the pieces still out are cancelled, Ctrl-C becomes :class:`Stopped`, and
+    any other exception carries the run's id as ``run`` for the caller's
+    resume line, as :class:`Stopped` does.
+    """
+    try:
         store.add_tasks(run_id, prefixes)
     except BaseException as exc:
-        prefixes.close()  # cancels the pieces still out
+        prefixes.close()
         if isinstance(exc, KeyboardInterrupt):
             raise Stopped(run_id) from None
-        exc.run = run_id  # the caller names the run to resume (planned again), as Stopped does
+        exc.run = run_id
         raise
-    return run_id
 
 
 def recounter(store, client):
@@ -542,7 +553,7 @@ def drive(store, client, run_id: int, *, holder: str | None = None, take_over: b
         client.register_plugin(ReadyWorker())  # workers load the kernel, now and when they join
         if needs_plan(run.state, sum(store.progress(run_id).tasks.values())):
             threads = max(1, threads or 0, sum(client.nthreads().values()))
-            store.add_tasks(run_id, planned(sides, settings, tree, client, threads)[0])
+            store_plan(store, run_id, planned(sides, settings, tree, client, threads)[0])
         store.reset_running(run_id, failed=True)
         if run.state != "running":
             store.set_run_state(run_id, "running")
